@@ -1,0 +1,436 @@
+"""Exact grid posterior over (T, beta) with the amplitude marginalised analytically.
+
+For a model S_nu = A * g_nu(T, beta) whose amplitude A enters linearly, the
+band fluxes of every (T, beta) grid node are tabulated once per band set. For
+each source and node the Gaussian likelihood is then quadratic in A, and the
+integral over A (uniform prior on [A_lo, A_hi]) is closed-form:
+
+    int L dA = exp(-chi2_min / 2) sqrt(2 pi / a) [Phi((A_hi - A*) sqrt a) - Phi((A_lo - A*) sqrt a)]
+
+with a = g^T C^-1 g and A* = g^T C^-1 F / a. Every term is a matrix product
+(sources x bands) @ (bands x nodes), so thousands of sources are done at once.
+
+Calibration covariance (C = D + sum_g d_g^2 m_g m_g^T) depends on the model
+flux; on the grid it is evaluated at each node's diagonal best-fit amplitude,
+which is exact without calibration terms and accurate to O(d_g^2 / SNR) with
+them. Limit-only bands enter as log Phi((L - A* g) / sigma_L) at A*.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+from astropy.table import Table
+from scipy.special import log_ndtr, ndtr, ndtri
+
+from ..errors import GridWarning, InputError
+from ..likelihood import Calibration, calibrated_chi2
+from ..priors import UniformAmplitude
+from ._data import prepare, resolve_prior
+from .summary import QUANTILES, trust_flags
+
+__all__ = ["GridPosterior", "grid_posterior"]
+
+_LOG_2PI = np.log(2.0 * np.pi)
+_N_T_DEFAULT = 100
+_N_BETA_DEFAULT = 60
+#: Half-width, in prior sd, of the beta grid when the beta prior is unbounded.
+_UNBOUNDED_SPAN = 5.0
+
+
+def _prior_sd(pr):
+    if np.isfinite(pr.low) and np.isfinite(pr.high) and type(pr).__name__ == "Uniform":
+        return (pr.high - pr.low) / np.sqrt(12.0)
+    return float(np.std(pr.sample(np.random.default_rng(0), 20000)))
+
+
+def _axis_nodes(pr, n, log):
+    lo, hi = pr.low, pr.high
+    if not np.isfinite(lo) or not np.isfinite(hi):
+        m, s = getattr(pr, "mean", 0.0), getattr(pr, "sigma", 1.0)
+        lo, hi = max(lo, m - _UNBOUNDED_SPAN * s), min(hi, m + _UNBOUNDED_SPAN * s)
+    if log and lo > 0:
+        return np.geomspace(lo, hi, n)
+    return np.linspace(lo, hi, n)
+
+
+def _node_widths(nodes, log):
+    """Cell widths around each node (edges at midpoints, in log for log grids)."""
+    x = np.log(nodes) if log else nodes
+    mid = 0.5 * (x[1:] + x[:-1])
+    edges = np.concatenate([[x[0]], mid, [x[-1]]])
+    if log:
+        edges = np.exp(edges)
+    return edges, np.diff(edges)
+
+
+class GridPosterior:
+    """Tabulated model band fluxes and priors for grid posteriors of many sources.
+
+    Parameters
+    ----------
+    bands : BandSet
+    model : SEDModel, keyword-only
+        A model with a linear amplitude and free parameters ``T`` (and
+        optionally ``beta``) besides it.
+    prior : Prior or mapping, keyword-only
+        Priors on the model's parameters (default: ``model.default_prior()``);
+        the amplitude prior must be :class:`~sedtemp.priors.UniformAmplitude`.
+    calibration : Calibration, keyword-only
+    T_nodes, beta_nodes : array_like, keyword-only
+        Grid nodes (K; dimensionless). Default: 100 log-spaced T nodes and 60
+        linear beta nodes across the prior support.
+    """
+
+    def __init__(self, bands, *, model, prior=None, calibration=None, T_nodes=None, beta_nodes=None):
+        self.bands = bands
+        self.model = model
+        amp = model.amplitude_name
+        names = tuple(model.param_names)
+        free = [p for p in names if p != amp]
+        if amp is None or free not in (["T"], ["T", "beta"]):
+            raise InputError(
+                f"grid mode needs a model with a linear amplitude and free T (and beta); "
+                f"{type(model).__name__} has parameters {list(names)}; use the MCMC fitter"
+            )
+        prior = resolve_prior(model, prior)
+        if not isinstance(prior[amp], UniformAmplitude):
+            raise InputError(
+                f"grid mode marginalises '{amp}' analytically and needs a UniformAmplitude prior "
+                f"on it, got {prior[amp]!r}; use the MCMC fitter for other amplitude priors"
+            )
+        self.prior, self.names, self.amp_name = prior, names, amp
+        self.has_beta = "beta" in names
+        self.T_nodes = np.asarray(T_nodes if T_nodes is not None else _axis_nodes(prior["T"], _N_T_DEFAULT, True), float)
+        if self.has_beta:
+            bn = beta_nodes if beta_nodes is not None else _axis_nodes(prior["beta"], _N_BETA_DEFAULT, False)
+            self.beta_nodes = np.asarray(bn, float)
+        else:
+            self.beta_nodes = np.array([np.nan])
+        self._check_nodes()
+        self._tabulate()
+        cal = np.zeros((len(bands), 0)) if calibration is None else (
+            calibration if isinstance(calibration, np.ndarray) else Calibration(calibration).matrix(bands.names)
+            if not isinstance(calibration, Calibration) else calibration.matrix(bands.names))
+        self._masks = (cal > 0).astype(float).T  # (k, nb)
+        self._d2 = np.array([col[col > 0].max() ** 2 for col in cal.T]) if cal.shape[1] else np.zeros(0)
+
+    def _check_nodes(self):
+        for name, nodes in (("T", self.T_nodes), ("beta", self.beta_nodes if self.has_beta else None)):
+            if nodes is None:
+                continue
+            if nodes.ndim != 1 or nodes.size < 3 or np.any(np.diff(nodes) <= 0):
+                raise InputError(f"{name} grid nodes must be a strictly increasing 1-D array of >= 3 values")
+            pr = self.prior[name]
+            if nodes[0] < pr.low or nodes[-1] > pr.high:
+                raise InputError(
+                    f"{name} grid [{nodes[0]:g}, {nodes[-1]:g}] extends outside its prior support "
+                    f"[{pr.low:g}, {pr.high:g}]"
+                )
+        self.T_edges, self._wT = _node_widths(self.T_nodes, self.T_nodes[0] > 0)
+        if self.has_beta:
+            self.beta_edges, self._wb = _node_widths(self.beta_nodes, False)
+        else:
+            self.beta_edges, self._wb = np.array([np.nan, np.nan]), np.ones(1)
+
+    def _theta_nodes(self):
+        tt, bb = np.meshgrid(self.T_nodes, self.beta_nodes, indexing="ij")
+        cols = {"T": tt.ravel(), "beta": bb.ravel(), self.amp_name: np.zeros(tt.size)}
+        return np.column_stack([cols[n] for n in self.names])
+
+    def _tabulate(self):
+        theta = self._theta_nodes()
+        nu = self.bands.nu_grid_hz
+        g = self.bands.band_fluxes(self.model.template_si(nu, theta))  # (n_nodes, nb)
+        valid = np.asarray(self.model.valid(theta), bool) & np.all(np.isfinite(g), axis=1)
+        self._g = np.where(valid[:, None], g, 0.0)
+        self._g2 = self._g**2
+        lp = self.prior["T"].logpdf(theta[:, self.names.index("T")]) + np.log(np.repeat(self._wT, self._wb.size))
+        if self.has_beta:
+            lp = lp + self.prior["beta"].logpdf(theta[:, self.names.index("beta")]) + np.log(np.tile(self._wb, self._wT.size))
+        self._log_node_prior = np.where(valid, lp, -np.inf)
+        pa = self.prior[self.amp_name]
+        self._a_lo, self._a_hi = 10.0**pa.low, 10.0**pa.high
+
+    @property
+    def shape(self):
+        """(n_T, n_beta) grid shape."""
+        return (self.T_nodes.size, self.beta_nodes.size)
+
+    def log_posterior(self, flux, err, limit_only):
+        """Unnormalised log posterior mass per node, and the conditional amplitude.
+
+        Parameters
+        ----------
+        flux, err : ndarray (n_sources, n_bands), SI
+            Missing bands have ``err = inf``.
+        limit_only : ndarray of bool (n_sources, n_bands)
+
+        Returns
+        -------
+        logp, a_hat, a_sd, chi2 : ndarray (n_sources, n_nodes)
+            log posterior mass, amplitude mean and sd given the node, chi^2 at a_hat.
+        """
+        det = ~limit_only & np.isfinite(err)
+        iv = np.where(det, 1.0 / np.where(np.isfinite(err), err, 1.0) ** 2, 0.0)
+        F = np.where(det, flux, 0.0)
+        g, g2 = self._g, self._g2
+        a = iv @ g2.T
+        b = (F * iv) @ g.T
+        f = np.sum(F * F * iv, axis=1)[:, None]
+        a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)
+        logdet = np.zeros_like(a)
+        for m, d2 in zip(self._masks, self._d2):  # a few calibration groups
+            ivm = iv * m
+            ak = ivm @ g2.T
+            bk = (F * ivm) @ g.T
+            kap = d2 * a_hat0**2
+            den = 1.0 + kap * ak
+            a = a - kap * ak * ak / den
+            b = b - kap * ak * bk / den
+            f = f - kap * bk * bk / den
+            logdet += np.log(den)
+        a = np.where(a > 0, a, np.inf)
+        a_hat = b / a
+        sd = 1.0 / np.sqrt(a)
+        chi2 = f - b * a_hat
+        hi, lo = (self._a_hi - a_hat) / sd, (self._a_lo - a_hat) / sd
+        lhi, llo = log_ndtr(hi), log_ndtr(lo)
+        with np.errstate(divide="ignore"):
+            log_mass = lhi + np.log(-np.expm1(np.minimum(llo - lhi, -1e-300)))
+            logp = (-0.5 * chi2 - 0.5 * logdet + np.log(sd) + log_mass
+                    + 0.5 * _LOG_2PI - np.log(self._a_hi - self._a_lo))
+        if limit_only.any():
+            a_use = np.clip(a_hat, self._a_lo, self._a_hi)
+            for j in np.flatnonzero(limit_only.any(axis=0)):  # loop over limit bands only
+                z = (flux[:, j, None] - a_use * g[None, :, j]) / err[:, j, None]
+                logp = logp + np.where(limit_only[:, j, None], log_ndtr(z), 0.0)
+        logp = logp + self._log_node_prior
+        logp = np.where(np.isfinite(logp), logp, -np.inf)
+        const = -0.5 * np.sum(np.where(det, np.log(np.where(det, err, 1.0) ** 2) + _LOG_2PI, 0.0), axis=1)
+        return logp + const[:, None], a_hat, sd, chi2
+
+    # ------------------------------------------------------------------ summaries
+    def _axis_quantiles(self, mass, edges, log):
+        """Quantiles of a per-cell marginal (n_s, n_cells), mass spread evenly in each cell."""
+        cdf = np.concatenate([np.zeros((mass.shape[0], 1)), np.cumsum(mass, axis=1)], axis=1)
+        x = np.log(edges) if log else edges
+        out = {}
+        for key, q in QUANTILES.items():
+            k = np.clip(np.sum(cdf[:, 1:] < q, axis=1), 0, mass.shape[1] - 1)
+            rows = np.arange(mass.shape[0])
+            m = mass[rows, k]
+            t = np.clip((q - cdf[rows, k]) / np.where(m > 0, m, 1.0), 0.0, 1.0)
+            v = x[k] + t * (x[k + 1] - x[k])
+            out[key] = np.exp(v) if log else v
+        return out
+
+    def _draw(self, post, a_hat, sd, n, rng):
+        """n weighted draws per source: (node index, T, beta, log10 amplitude)."""
+        ns, nn = post.shape
+        cum = np.cumsum(post, axis=1)
+        cum = cum / cum[:, -1:] + np.arange(ns)[:, None]
+        u = rng.uniform(size=(ns, n)) + np.arange(ns)[:, None]
+        flat = np.minimum(np.searchsorted(cum.ravel(), u.ravel()), ns * nn - 1)
+        node = (flat - np.arange(ns).repeat(n) * nn).reshape(ns, n).clip(0, nn - 1)
+        it, ib = np.divmod(node, self.beta_nodes.size)
+        jt, jb = rng.uniform(size=(2, ns, n))
+        lt0, lt1 = np.log(self.T_edges[it]), np.log(self.T_edges[it + 1])
+        T = np.exp(lt0 + jt * (lt1 - lt0))
+        beta = (self.beta_edges[ib] + jb * (self.beta_edges[ib + 1] - self.beta_edges[ib])
+                if self.has_beta else np.full((ns, n), np.nan))
+        rows = np.arange(ns)[:, None]
+        mu, s = a_hat[rows, node], sd[rows, node]
+        lo, hi = ndtr((self._a_lo - mu) / s), ndtr((self._a_hi - mu) / s)
+        p = np.clip(lo + rng.uniform(size=(ns, n)) * (hi - lo), 1e-300, 1 - 1e-16)
+        amp = np.clip(mu + s * ndtri(p), self._a_lo, self._a_hi)
+        return node, T, beta, np.log10(amp)
+
+    def summarise(self, flux, err, limit_only, *, n_draws=1000, n_ppp=200, rng=None, keep_draws=False):
+        """Posterior summaries for a block of sources (SI arrays, see :meth:`log_posterior`).
+
+        Returns
+        -------
+        columns : dict of str -> ndarray (n_sources,)
+            The flat summary columns (``T_median``, ..., ``chi2_reduced``, ``ppp``).
+        extra : dict
+            ``posterior`` (n_sources, n_T, n_beta) normalised node masses,
+            ``flags`` (list of tuples), and ``draws`` when ``keep_draws``.
+        """
+        rng = np.random.default_rng(rng)
+        logp, a_hat, sd, chi2 = self.log_posterior(flux, err, limit_only)
+        ns = flux.shape[0]
+        peak = logp.max(axis=1, keepdims=True)
+        ok = np.isfinite(peak[:, 0])
+        post = np.where(ok[:, None], np.exp(logp - np.where(ok[:, None], peak, 0.0)), 1.0)
+        post /= post.sum(axis=1, keepdims=True)
+        cube = post.reshape(ns, *self.shape)
+        cols = {}
+        qT = self._axis_quantiles(cube.sum(axis=2), self.T_edges, self.T_nodes[0] > 0)
+        cols.update({f"T_{k}": v for k, v in qT.items()})
+        if self.has_beta:
+            qb = self._axis_quantiles(cube.sum(axis=1), self.beta_edges, False)
+            cols.update({f"beta_{k}": v for k, v in qb.items()})
+        node, T, beta, lamp = self._draw(post, a_hat, sd, max(n_draws, n_ppp, 2), rng)
+        qa = np.quantile(lamp, list(QUANTILES.values()), axis=1)
+        cols.update({f"{self.amp_name}_{k}": qa[i] for i, k in enumerate(QUANTILES)})
+        # MAP: node maximising the profile posterior density (node widths and the
+        # amplitude integral removed again), amplitude at its conditional optimum.
+        log_w = np.log(np.repeat(self._wT, self._wb.size) * np.tile(self._wb, self._wT.size))
+        prof = logp - log_w - np.log(sd)
+        imap = np.argmax(np.where(np.isfinite(prof), prof, -np.inf), axis=1)
+        rows = np.arange(ns)
+        it, ib = np.divmod(imap, self.beta_nodes.size)
+        cols["T_map"] = self.T_nodes[it]
+        if self.has_beta:
+            cols["beta_map"] = self.beta_nodes[ib]
+        amp_map = np.clip(a_hat[rows, imap], self._a_lo, self._a_hi)
+        cols[f"{self.amp_name}_map"] = np.log10(amp_map)
+        n_det = np.sum(~limit_only & np.isfinite(err), axis=1)
+        dof = n_det - len(self.names)
+        m_map = amp_map[:, None] * self._g[imap]
+        chi2_map = self._chi2(flux, err, limit_only, m_map[:, None, :])[:, 0]
+        cols["chi2_map"] = chi2_map
+        cols["n_bands_used"] = n_det
+        cols["dof"] = dof
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cols["chi2_reduced"] = np.where(dof > 0, chi2_map / np.where(dof > 0, dof, 1), np.nan)
+        cols["ppp"] = self._ppp(flux, err, limit_only, node[:, :n_ppp], lamp[:, :n_ppp], rng)
+        flags = self._flags(cube, T, beta, ok)
+        for key, c in cols.items():
+            if c.dtype.kind == "f":
+                c[~ok] = np.nan
+        extra = {"posterior": cube, "flags": flags}
+        if keep_draws:
+            extra["draws"] = {"T": T, "beta": beta, self.amp_name: lamp}
+        return cols, extra
+
+    def _chi2(self, flux, err, limit_only, model):
+        """chi^2 of data (n_s, nb) against models (n_s, n_m, nb) with calibration terms."""
+        det = ~limit_only & np.isfinite(err)
+        iv = np.where(det, 1.0 / np.where(det, err, 1.0) ** 2, 0.0)[:, None, :]
+        resid = np.where(det, flux, 0.0)[:, None, :] - model
+        chi2, _ = calibrated_chi2(resid, model, iv, self._masks, self._d2)
+        return chi2
+
+    def _ppp(self, flux, err, limit_only, node, lamp, rng):
+        """Posterior predictive p-value of chi^2 from replicated data sets at the draws."""
+        model = (10.0**lamp)[..., None] * self._g[node]  # (n_s, n_d, nb)
+        det = ~limit_only & np.isfinite(err)
+        sig = np.where(det, err, 0.0)[:, None, :]
+        noise = rng.standard_normal(model.shape) * sig
+        for m, d2 in zip(self._masks, self._d2):
+            noise = noise + model * m * (np.sqrt(d2) * rng.standard_normal(model.shape[:2]))[..., None]
+        chi_obs = self._chi2(flux, err, limit_only, model)
+        # replicated data: chi2 of (model + noise) against the model
+        iv = np.where(det, 1.0 / np.where(det, err, 1.0) ** 2, 0.0)[:, None, :]
+        chi_rep, _ = calibrated_chi2(np.where(det[:, None, :], noise, 0.0), model, iv, self._masks, self._d2)
+        return np.mean(chi_rep >= chi_obs, axis=1)
+
+    def _flags(self, cube, T, beta, ok):
+        """Per-source trust flags from the node masses and draws."""
+        flags = []
+        wT = np.diff(np.log(self.T_edges))
+        coarse = 0
+        for i in range(cube.shape[0]):  # loop over sources for cheap per-source bookkeeping
+            if not ok[i]:
+                flags.append(("no_valid_grid_node",))
+                continue
+            w = np.ones(T.shape[1])
+            fl = trust_flags("T", T[i], w, self.prior["T"].low, self.prior["T"].high, self._sd_T)
+            if self.has_beta:
+                fl += trust_flags("beta", beta[i], w, self.prior["beta"].low, self.prior["beta"].high, self._sd_b)
+            lT = np.log(T[i])
+            k = np.clip(np.searchsorted(self.T_edges, np.median(T[i])) - 1, 0, wT.size - 1)
+            if np.std(lT) < wT[k]:
+                fl.append("grid_too_coarse")
+                coarse += 1
+            flags.append(tuple(fl))
+        if coarse:
+            warnings.warn(
+                f"{coarse} source(s) have a T posterior narrower than a grid cell; "
+                "pass finer T_nodes (flag 'grid_too_coarse')", GridWarning, stacklevel=3)
+        return flags
+
+    @property
+    def _sd_T(self):
+        return _prior_sd(self.prior["T"])
+
+    @property
+    def _sd_b(self):
+        return _prior_sd(self.prior["beta"])
+
+
+def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration=None,
+                   upper_limits=None, source_ids=None, T_nodes=None, beta_nodes=None,
+                   n_draws=1000, n_ppp=200, chunk_size=256, seed=None, grid=None):
+    """Grid posteriors of T, beta and amplitude for many sources at once.
+
+    Parameters
+    ----------
+    flux, flux_err : Quantity or array_like, shape (n_sources, n_bands)
+        Flux densities and 1-sigma errors (Jy if bare); NaN in both marks an
+        unobserved band.
+    bands : BandSet
+    model : SEDModel, keyword-only
+        Default: :class:`~sedtemp.models.ModifiedBlackbody` per its defaults
+        is *not* assumed; a model is required (it fixes distance or beam).
+    prior, calibration, upper_limits : keyword-only
+        As for :func:`~sedtemp.fit.fit_source`.
+    source_ids : sequence, optional
+        Identifiers for the ``id`` column and for messages.
+    T_nodes, beta_nodes : array_like, optional
+        Grid nodes (see :class:`GridPosterior`).
+    n_draws : int
+        Posterior draws per source used for the amplitude quantiles.
+    chunk_size : int
+        Sources per vectorised block (memory ~ chunk_size * n_nodes * 80 bytes).
+    seed : int, optional
+        Seed of the draws; each chunk gets its own stream from a SeedSequence.
+    grid : GridPosterior, optional
+        Reuse precomputed tables (the other model/prior/grid keywords are then ignored).
+
+    Returns
+    -------
+    astropy.table.Table
+        One row per source: ``id``, ``{T,beta,<amplitude>}_{p2_5,p16,median,p84,p97_5,map}``,
+        ``chi2_map``, ``dof``, ``chi2_reduced``, ``ppp``, ``n_bands_used``,
+        ``flags`` (comma-separated). ``T`` columns in K.
+    """
+    if grid is None:
+        if model is None:
+            raise InputError("grid_posterior needs model= (e.g. ModifiedBlackbody(distance=...))")
+        grid = GridPosterior(bands, model=model, prior=prior, calibration=calibration,
+                             T_nodes=T_nodes, beta_nodes=beta_nodes)
+    phot = prepare(flux, flux_err, bands.names, upper_limits=upper_limits, source_label=source_ids)
+    ns = phot.flux.shape[0]
+    n_free = len(grid.names)
+    seqs = np.random.SeedSequence(seed).spawn(max(1, -(-ns // chunk_size)))
+    parts, flags = [], []
+    for c, start in enumerate(range(0, ns, chunk_size)):
+        sl = slice(start, start + chunk_size)
+        err = np.where(phot.missing[sl], np.inf, phot.err[sl])
+        cols, extra = grid.summarise(phot.flux[sl], err, phot.limit_only[sl], n_draws=n_draws,
+                                     n_ppp=n_ppp, rng=np.random.default_rng(seqs[c]))
+        parts.append(cols)
+        flags.extend(extra["flags"])
+    out = Table()
+    out["id"] = np.asarray(source_ids) if source_ids is not None else np.arange(ns)
+    for key in parts[0]:
+        out[key] = np.concatenate([p[key] for p in parts])
+    few = out["n_bands_used"] < n_free
+    flag_text = []
+    for i, fl in enumerate(flags):
+        fl = list(fl) + (["too_few_bands"] if few[i] else [])
+        flag_text.append(",".join(fl))
+    for key in out.colnames:
+        if key.startswith(("T_", "beta_", grid.amp_name)) and out[key].dtype.kind == "f":
+            out[key][few] = np.nan
+    out["flags"] = flag_text
+    for key in out.colnames:
+        if key.startswith("T_"):
+            out[key].unit = "K"
+    out.meta["method"] = "grid"
+    out.meta["grid_shape"] = list(grid.shape)
+    return out
