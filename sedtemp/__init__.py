@@ -1,7 +1,13 @@
-"""sedtemp: dust temperature posteriors and radiative-equilibrium diagnosis."""
+"""sedtemp: dust temperature posteriors and radiative-equilibrium diagnosis.
+
+Fit (T, beta, amplitude) posteriors to far-IR/submm photometry, predict the
+radiative-equilibrium temperature of the dust in a modelled radiation field,
+and compare the two.
+"""
 
 from importlib.metadata import PackageNotFoundError, version
 
+from .bands import Band, BandSet
 from .errors import (
     CatalogError,
     ConfigError,
@@ -10,7 +16,12 @@ from .errors import (
     SedtempError,
     SedtempWarning,
 )
+from .fit import FitResult, fit_source, grid_posterior
+from .likelihood import Calibration
+from .models import ModifiedBlackbody, ThickModifiedBlackbody, TwoTemperatureModel
+from .opacity import PowerLawOpacity, TabulatedOpacity
 from .planck import planck_nu
+from .priors import Gaussian, LogUniform, Prior, Uniform, UniformAmplitude
 
 try:
     __version__ = version("sedtemp")
@@ -19,7 +30,23 @@ except PackageNotFoundError:  # running from a source tree without install
 
 __all__ = [
     "__version__",
+    "Band",
+    "BandSet",
+    "Calibration",
+    "FitResult",
+    "fit_source",
+    "grid_posterior",
+    "ModifiedBlackbody",
+    "ThickModifiedBlackbody",
+    "TwoTemperatureModel",
+    "PowerLawOpacity",
+    "TabulatedOpacity",
     "planck_nu",
+    "Prior",
+    "Uniform",
+    "LogUniform",
+    "Gaussian",
+    "UniformAmplitude",
     "SedtempError",
     "InputError",
     "CatalogError",

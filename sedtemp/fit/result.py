@@ -95,7 +95,11 @@ class FitResult:
         for name in self.param_names:
             q = np.quantile(self.samples[name], list(QUANTILES.values()))
             rows.append((name, *q, self.map_params[name], self.ess[name], self.units.get(name, "")))
-        return Table(rows=rows, names=("parameter", *QUANTILES, "map", "ess", "unit"))
+        tab = Table(rows=rows, names=("parameter", *QUANTILES, "map", "ess", "unit"))
+        for col in (*QUANTILES, "map"):
+            tab[col].format = ".4g"
+        tab["ess"].format = ".0f"
+        return tab
 
     def __repr__(self):
         s = self.summary()

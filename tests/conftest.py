@@ -1,0 +1,42 @@
+"""Shared fixtures: an invented six-band photometric system and a simulated source."""
+
+import astropy.units as u
+import numpy as np
+import pytest
+
+from sedtemp.bands import Band, BandSet
+from sedtemp.models import ModifiedBlackbody
+
+#: Invented band set (top-hats, 30 % wide in frequency) spanning the far-IR/submm.
+WAVELENGTHS_UM = (70, 100, 160, 250, 350, 500)
+TRUTH = {"log10_mass": 0.0, "T": 20.0, "beta": 1.8}
+
+
+@pytest.fixture(scope="session")
+def bands():
+    return BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in WAVELENGTHS_UM])
+
+
+@pytest.fixture(scope="session")
+def model():
+    return ModifiedBlackbody(distance=300 * u.pc)
+
+
+def simulate(model, bands, theta, snr, rng, calibration=None):
+    """Band fluxes (Jy) of parameter rows ``theta`` with Gaussian noise at ``snr``."""
+    theta = np.atleast_2d(theta)
+    m = bands.band_fluxes(model.sed_si(bands.nu_grid_hz, theta)) / 1e-26
+    err = m / snr
+    f = m + err * rng.standard_normal(m.shape)
+    if calibration is not None:
+        for members, frac in calibration.values():
+            idx = [bands.names.index(b) for b in members]
+            f[:, idx] += m[:, idx] * frac * rng.standard_normal((m.shape[0], 1))
+    return f, err, m
+
+
+@pytest.fixture(scope="session")
+def source(model, bands):
+    theta = np.array([[TRUTH["log10_mass"], TRUTH["T"], TRUTH["beta"]]])
+    f, err, _ = simulate(model, bands, theta, 20.0, np.random.default_rng(11))
+    return f[0], err[0]

@@ -1,0 +1,201 @@
+"""MCMC and grid fitters: agreement with a brute-force posterior, recovery, seeds, errors."""
+
+import astropy.units as u
+import numpy as np
+import pytest
+
+from conftest import TRUTH, simulate
+from sedtemp.errors import ConvergenceWarning, InputError, PriorEdgeWarning
+from sedtemp.fit import fit_source, grid_posterior
+from sedtemp.priors import Uniform
+
+
+@pytest.fixture(scope="module")
+def fit(source, bands, model):
+    f, e = source
+    return fit_source(f, e, bands, model=model, seed=42)
+
+
+def _brute_force(f, e, bands, model):
+    """Posterior on a dense 3-D grid (log10 M, T, beta) of the plain Gaussian likelihood.
+
+    Independent of the package's likelihood, grid and sampler: chi^2 is written
+    out here; the model SED is the package's (this test checks inference, not physics).
+    """
+    lm = np.linspace(-0.25, 0.25, 61)
+    T = np.linspace(16.0, 25.0, 91)
+    b = np.linspace(1.2, 2.4, 73)
+    TT, BB = np.meshgrid(T, b, indexing="ij")
+    theta = np.column_stack([np.zeros(TT.size), TT.ravel(), BB.ravel()])
+    g = (bands.band_fluxes(model.sed_si(bands.nu_grid_hz, theta)) / 1e-26).reshape(T.size, b.size, -1)
+    m = 10.0 ** lm[:, None, None, None] * g[None]  # the amplitude is a plain factor
+    chi2 = np.sum(((f - m) / e) ** 2, axis=-1)
+    LM = lm[:, None, None]
+    # priors: uniform in T and beta; uniform in linear mass -> density 10^lm in lm
+    logp = -0.5 * chi2 + LM * np.log(10)
+    p = np.exp(logp - logp.max())
+    return {"T": (T, p.sum(axis=(0, 2))), "beta": (b, p.sum(axis=(0, 1))), "log10_mass": (lm, p.sum(axis=(1, 2)))}
+
+
+def _grid_quantile(x, p, q):
+    c = np.cumsum(p) / p.sum()
+    return np.interp(q, c, x)
+
+
+def test_mcmc_matches_brute_force_posterior(fit, source, bands, model):
+    # Reference: an exact brute-force posterior on a dense grid computed in this
+    # test. Tolerance: MC error of a quantile ~ 1.5 sd / sqrt(ESS) (ESS >= 1000),
+    # times 4, plus the grid step (0.1 K, 0.017 in beta, 0.008 dex).
+    bf = _brute_force(*source, bands, model)
+    step = {"T": 0.1, "beta": 0.017, "log10_mass": 0.0083}
+    for name in ("T", "beta", "log10_mass"):
+        x, p = bf[name]
+        sd = np.std(fit.samples[name])
+        tol = 4 * 1.5 * sd / np.sqrt(fit.ess[name]) + step[name]
+        for q in (0.16, 0.5, 0.84):
+            assert np.quantile(fit.samples[name], q) == pytest.approx(_grid_quantile(x, p, q), abs=tol)
+
+
+def test_fit_result_diagnostics(fit):
+    assert fit.converged and fit.flags == ()
+    assert set(fit.samples) == {"log10_mass", "T", "beta"}
+    assert all(fit.ess[k] >= 1000 for k in ("T", "beta"))
+    assert 0.15 < fit.acceptance_fraction < 0.8
+    assert fit.n_steps > 50 * max(fit.tau.values())
+    s = fit.summary()
+    for key in ("T_median", "T_p16", "T_p84", "T_p2_5", "T_p97_5", "T_map", "chi2_reduced", "ppp"):
+        assert key in s
+    assert s["T_p2_5"] < s["T_p16"] < s["T_median"] < s["T_p84"] < s["T_p97_5"]
+    assert fit.dof == 3
+    # the data were simulated from the model: chi2 at MAP is chi2(3)-distributed,
+    # so the p-value must not be extreme (fixed seed; p in (0.01, 0.99)).
+    assert 0.01 < s["ppp"] < 0.99
+    tab = fit.summary_table()
+    assert list(tab["parameter"]) == ["log10_mass", "T", "beta"]
+
+
+def test_truth_inside_credible_interval(fit):
+    s = fit.summary()
+    for name, val in TRUTH.items():
+        assert s[f"{name}_p2_5"] < val < s[f"{name}_p97_5"]
+
+
+def test_grid_matches_mcmc_with_calibration(bands, model):
+    # Grid (exact in T, beta; covariance at the node's best amplitude) vs MCMC
+    # (exact model-dependent covariance): agreement within 0.1 posterior sd plus
+    # the MCMC quantile error 4 * 1.5 sd / sqrt(ESS).
+    cal = {"short": (["b70", "b100", "b160"], 0.07), "long": (["b250", "b350", "b500"], 0.05)}
+    theta = np.array([[0.0, 25.0, 1.6]])
+    f, e, _ = simulate(model, bands, theta, 20.0, np.random.default_rng(5), calibration=cal)
+    r = fit_source(f[0], e[0], bands, model=model, calibration=cal, seed=3)
+    g = grid_posterior(f, e, bands, model=model, calibration=cal, seed=3)
+    for name in ("T", "beta"):
+        sd = np.std(r.samples[name])
+        tol = 0.1 * sd + 6 * sd / np.sqrt(r.ess[name])
+        for q, col in ((0.16, "p16"), (0.5, "median"), (0.84, "p84")):
+            assert g[f"{name}_{col}"][0] == pytest.approx(np.quantile(r.samples[name], q), abs=tol)
+
+
+def test_grid_coverage_of_68_and_95_percent_intervals(bands, model):
+    # 400 sources drawn from the prior region of interest at S/N 20. The fraction
+    # of truths inside the 68 % (95 %) intervals must be nominal within 3 binomial
+    # sd: 3 * sqrt(0.68 * 0.32 / 400) = 0.070 (0.033).
+    rng = np.random.default_rng(2024)
+    n = 400
+    theta = np.column_stack([rng.uniform(-0.5, 0.5, n), rng.uniform(12, 40, n), rng.uniform(1.0, 2.5, n)])
+    f, e, _ = simulate(model, bands, theta, 20.0, rng)
+    g = grid_posterior(f, e, bands, model=model, seed=1)
+    for j, name in enumerate(("T", "beta")):
+        inside68 = np.mean((g[f"{name}_p16"] < theta[:, j + 1]) & (theta[:, j + 1] < g[f"{name}_p84"]))
+        inside95 = np.mean((g[f"{name}_p2_5"] < theta[:, j + 1]) & (theta[:, j + 1] < g[f"{name}_p97_5"]))
+        assert inside68 == pytest.approx(0.68, abs=0.070)
+        assert inside95 == pytest.approx(0.95, abs=0.033)
+
+
+def test_same_seed_same_chain_other_seed_differs(source, bands, model):
+    f, e = source
+    kw = dict(model=model, ess_target=200, max_steps=2000)
+    a = fit_source(f, e, bands, seed=7, **kw)
+    b = fit_source(f, e, bands, seed=7, **kw)
+    c = fit_source(f, e, bands, seed=8, **kw)
+    assert np.array_equal(a.chain, b.chain)
+    assert not np.array_equal(a.chain[-1], c.chain[-1])
+
+
+def test_optimum_start_for_models_without_grid(source, bands, model):
+    f, e = source
+    r = fit_source(f, e, bands, model=model, start="optimum", seed=1, ess_target=300)
+    assert np.median(r.samples["T"]) == pytest.approx(TRUTH["T"], abs=4 * np.std(r.samples["T"]))
+
+
+def test_prior_edge_is_flagged(source, bands, model):
+    f, e = source
+    with pytest.warns(PriorEdgeWarning, match="posterior of T piles up against its prior edge"):
+        r = fit_source(f, e, bands, model=model, prior={"T": Uniform(5, 17)}, seed=1, ess_target=300)
+    assert "T_at_prior_high" in r.flags
+
+
+def test_unconverged_run_is_flagged(source, bands, model):
+    f, e = source
+    with pytest.warns(ConvergenceWarning, match="MCMC not converged"):
+        r = fit_source(f, e, bands, model=model, seed=1, max_steps=100)
+    assert not r.converged and "not_converged" in r.flags
+
+
+def test_limit_far_above_model_changes_nothing(source, bands, model):
+    # log Phi((L - m)/sigma) -> 0 for L >> m: the posterior equals the one without
+    # the band (exact limit), up to MCMC noise 6 sd / sqrt(ESS).
+    f, e = source
+    f2, e2 = f.copy(), e.copy()
+    f2[0], e2[0] = 1e6, 1e5  # band b70 as a huge upper limit
+    r1 = fit_source(f2, e2, bands, model=model, upper_limits=["b70"], seed=2)
+    f3, e3 = f.copy(), e.copy()
+    f3[0] = e3[0] = np.nan
+    r2 = fit_source(f3, e3, bands, model=model, seed=2)
+    sd = np.std(r2.samples["T"])
+    assert np.median(r1.samples["T"]) == pytest.approx(np.median(r2.samples["T"]), abs=6 * sd / np.sqrt(r2.ess["T"]))
+    assert r1.n_bands_used == r2.n_bands_used == 5
+
+
+def test_quantity_fluxes_in_mjy_and_si(source, bands, model):
+    # Unit conversion only: the same posterior to rounding (grid mode is deterministic).
+    f, e = source
+    ref = grid_posterior(f[None], e[None], bands, model=model, seed=4)
+    for unit, scale in ((u.mJy, 1e3), (u.W / u.m**2 / u.Hz, 1e-26)):
+        g = grid_posterior(f[None] * scale * unit, e[None] * scale * unit, bands, model=model, seed=4)
+        for col in ("T_median", "beta_p16", "log10_mass_p84"):
+            assert g[col][0] == pytest.approx(ref[col][0], rel=1e-9)
+
+
+def test_input_errors_name_the_band(source, bands, model):
+    f, e = source
+    with pytest.raises(InputError, match="flux: unit kg is not a flux density"):
+        fit_source(f * u.kg, e * u.Jy, bands, model=model)
+    bad = e.copy()
+    bad[2] = 0.0
+    with pytest.raises(InputError, match="band 'b160': flux_err must be positive"):
+        fit_source(f, bad, bands, model=model)
+    badf = f.copy()
+    badf[3] = np.nan
+    with pytest.raises(InputError, match="band 'b250': flux is NaN"):
+        fit_source(badf, e, bands, model=model)
+    few = np.full_like(f, np.nan)
+    few[:2] = f[:2]
+    with pytest.raises(InputError, match=r"has 2 usable band\(s\) \['b70', 'b100'\] but the model has 3 free"):
+        fit_source(few, np.where(np.isnan(few), np.nan, e), bands, model=model)
+    with pytest.raises(InputError, match="flux has 5 values per source but there are 6 bands"):
+        fit_source(f[:5], e[:5], bands, model=model)
+    with pytest.raises(InputError, match=r"prior given for unknown parameter\(s\) \['tau'\]"):
+        fit_source(f, e, bands, model=model, prior={"tau": Uniform(0, 1)})
+
+
+def test_grid_table_and_too_few_bands(bands, model):
+    rng = np.random.default_rng(0)
+    theta = np.array([[0.0, 20.0, 1.8], [0.2, 30.0, 1.5]])
+    f, e, _ = simulate(model, bands, theta, 30.0, rng)
+    f[1, 2:] = e[1, 2:] = np.nan
+    g = grid_posterior(f, e, bands, model=model, source_ids=["src-a", "src-b"], seed=0)
+    assert list(g["id"]) == ["src-a", "src-b"]
+    assert g["T_median"].unit == u.K
+    assert g["flags"][1] == "too_few_bands" and np.isnan(g["T_median"][1])
+    assert g["T_p16"][0] < 20.0 + 3 * (g["T_p84"][0] - g["T_p16"][0]) and g["n_bands_used"][0] == 6
