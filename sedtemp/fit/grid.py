@@ -159,6 +159,8 @@ class GridPosterior:
         if self.has_beta:
             lp = lp + self.prior["beta"].logpdf(theta[:, self.names.index("beta")]) + np.log(np.tile(self._wb, self._wT.size))
         self._log_node_prior = np.where(valid, lp, -np.inf)
+        log_w = np.log(np.repeat(self._wT, self._wb.size) * np.tile(self._wb, self._wT.size))
+        self._log_node_density = self._log_node_prior - log_w
         pa = self.prior[self.amp_name]
         self._a_lo, self._a_hi = 10.0**pa.low, 10.0**pa.high
 
@@ -189,27 +191,36 @@ class GridPosterior:
         b = (F * iv) @ g.T
         f = np.sum(F * F * iv, axis=1)[:, None]
         a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)
-        logdet = np.zeros_like(a)
+        a_hat0 *= a_hat0
+        det_prod = np.ones_like(a)  # prod_g (1 + d_g^2 A^2 a_g): one log at the end
         for m, d2 in zip(self._masks, self._d2):  # a few calibration groups
             ivm = iv * m
             ak = ivm @ g2.T
             bk = (F * ivm) @ g.T
-            kap = d2 * a_hat0**2
+            kap = d2 * a_hat0
             den = 1.0 + kap * ak
-            a = a - kap * ak * ak / den
-            b = b - kap * ak * bk / den
-            f = f - kap * bk * bk / den
-            logdet += np.log(den)
+            kap /= den
+            a -= kap * ak * ak
+            b -= kap * ak * bk
+            f = f - kap * bk * bk
+            det_prod *= den
         a = np.where(a > 0, a, np.inf)
         a_hat = b / a
-        sd = 1.0 / np.sqrt(a)
         chi2 = f - b * a_hat
-        hi, lo = (self._a_hi - a_hat) / sd, (self._a_lo - a_hat) / sd
-        lhi, llo = log_ndtr(hi), log_ndtr(lo)
+        # log of det C / det D times a, and sd = a^-1/2, in one log call
+        det_prod *= a
         with np.errstate(divide="ignore"):
-            log_mass = lhi + np.log(-np.expm1(np.minimum(llo - lhi, -1e-300)))
-            logp = (-0.5 * chi2 - 0.5 * logdet + np.log(sd) + log_mass
-                    + 0.5 * _LOG_2PI - np.log(self._a_hi - self._a_lo))
+            logp = -0.5 * (chi2 + np.log(det_prod))
+        logp += 0.5 * _LOG_2PI - np.log(self._a_hi - self._a_lo)
+        sd = 1.0 / np.sqrt(a)
+        # amplitude mass inside the prior bounds, log[Phi(hi) - Phi(lo)]: ~0 unless
+        # the conditional amplitude is within 8 sd of a bound, so evaluate only there
+        hi, lo = (self._a_hi - a_hat) / sd, (self._a_lo - a_hat) / sd
+        near = (hi < 8.0) | (lo > -8.0)
+        if near.any():
+            lhi, llo = log_ndtr(hi[near]), log_ndtr(lo[near])
+            with np.errstate(divide="ignore"):
+                logp[near] += lhi + np.log(-np.expm1(np.minimum(llo - lhi, -1e-300)))
         if limit_only.any():
             a_use = np.clip(a_hat, self._a_lo, self._a_hi)
             for j in np.flatnonzero(limit_only.any(axis=0)):  # loop over limit bands only
@@ -276,7 +287,7 @@ class GridPosterior:
         amp = np.clip(mu + s * ndtri(p), self._a_lo, self._a_hi)
         return node, T, beta, np.log10(amp)
 
-    def summarise(self, flux, err, limit_only, *, n_draws=1000, n_ppp=200, rng=None, keep_draws=False):
+    def summarise(self, flux, err, limit_only, *, n_draws=500, n_ppp=100, rng=None, keep_draws=False):
         """Posterior summaries for a block of sources (SI arrays, see :meth:`log_posterior`).
 
         Returns
@@ -305,10 +316,10 @@ class GridPosterior:
         node, T, beta, lamp = self._draw(post, a_hat, sd, max(n_draws, n_ppp, 2), rng)
         qa = np.quantile(lamp, list(QUANTILES.values()), axis=1)
         cols.update({f"{self.amp_name}_{k}": qa[i] for i, k in enumerate(QUANTILES)})
-        # MAP: node maximising the profile posterior density (node widths and the
-        # amplitude integral removed again), amplitude at its conditional optimum.
-        log_w = np.log(np.repeat(self._wT, self._wb.size) * np.tile(self._wb, self._wT.size))
-        prof = logp - log_w - np.log(sd)
+        # MAP: the node maximising the posterior density with the amplitude at its
+        # conditional optimum, -chi2/2 + log prior density (the slowly varying
+        # calibration determinant is left out; it moves the MAP by << a cell).
+        prof = -0.5 * chi2 + self._log_node_density
         imap = np.argmax(np.where(np.isfinite(prof), prof, -np.inf), axis=1)
         rows = np.arange(ns)
         it, ib = np.divmod(imap, self.beta_nodes.size)
@@ -394,7 +405,7 @@ class GridPosterior:
 
 def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration=None,
                    upper_limits=None, source_ids=None, T_nodes=None, beta_nodes=None,
-                   n_draws=1000, n_ppp=200, chunk_size=256, seed=None, grid=None):
+                   n_draws=500, n_ppp=100, chunk_size=32, seed=None, grid=None):
     """Grid posteriors of T, beta and amplitude for many sources at once.
 
     Parameters
@@ -415,7 +426,8 @@ def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration
     n_draws : int
         Posterior draws per source used for the amplitude quantiles.
     chunk_size : int
-        Sources per vectorised block (memory ~ chunk_size * n_nodes * 80 bytes).
+        Sources per vectorised block. Small blocks keep the (sources x nodes)
+        work arrays in the CPU cache: 32 is ~2x faster than 256 here.
     seed : int, optional
         Seed of the draws; each chunk gets its own stream from a SeedSequence.
     grid : GridPosterior, optional
