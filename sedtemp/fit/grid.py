@@ -19,6 +19,7 @@ them. Limit-only bands enter as log Phi((L - A* g) / sigma_L) at A*.
 from __future__ import annotations
 
 import warnings
+import zlib
 
 import numpy as np
 from astropy.table import Table
@@ -72,6 +73,34 @@ def _node_widths(nodes, log):
     if log:
         edges = np.exp(edges)
     return edges, np.diff(edges)
+
+
+class _BlockRandom:
+    """Random numbers for a block of sources, from one Generator or one per source.
+
+    With one Generator per source (a sequence), each source's draws depend on
+    its own seed only, never on which block or worker it landed in.
+    """
+
+    def __init__(self, rng, n):
+        if isinstance(rng, list | tuple):
+            if len(rng) != n:
+                raise InputError(f"got {len(rng)} random generators for {n} sources")
+            self._gens = [np.random.default_rng(r) for r in rng]
+        else:
+            self._gens = None
+            self._one = np.random.default_rng(rng)
+
+    def _call(self, method, size):
+        if self._gens is None:
+            return getattr(self._one, method)(size=size)
+        return np.stack([getattr(g, method)(size=size[1:]) for g in self._gens])
+
+    def uniform(self, size):
+        return self._call("uniform", size)
+
+    def standard_normal(self, size):
+        return self._call("standard_normal", size)
 
 
 class GridPosterior:
@@ -163,6 +192,15 @@ class GridPosterior:
         self._log_node_density = self._log_node_prior - log_w
         pa = self.prior[self.amp_name]
         self._a_lo, self._a_hi = 10.0**pa.low, 10.0**pa.high
+
+    def column_names(self):
+        """Names of the summary columns :meth:`summarise` returns."""
+        names = [f"T_{k}" for k in QUANTILES]
+        if self.has_beta:
+            names += [f"beta_{k}" for k in QUANTILES]
+        names += [f"{self.amp_name}_{k}" for k in QUANTILES] + ["T_map"]
+        names += (["beta_map"] if self.has_beta else []) + [f"{self.amp_name}_map"]
+        return names + ["chi2_map", "n_bands_used", "dof", "chi2_reduced", "ppp"]
 
     @property
     def shape(self):
@@ -271,11 +309,12 @@ class GridPosterior:
         ns, nn = post.shape
         cum = np.cumsum(post, axis=1)
         cum = cum / cum[:, -1:] + np.arange(ns)[:, None]
-        u = rng.uniform(size=(ns, n)) + np.arange(ns)[:, None]
+        uni = rng.uniform(size=(ns, 4, n))
+        u = uni[:, 0] + np.arange(ns)[:, None]
         flat = np.minimum(np.searchsorted(cum.ravel(), u.ravel()), ns * nn - 1)
         node = (flat - np.arange(ns).repeat(n) * nn).reshape(ns, n).clip(0, nn - 1)
         it, ib = np.divmod(node, self.beta_nodes.size)
-        jt, jb = rng.uniform(size=(2, ns, n))
+        jt, jb = uni[:, 1], uni[:, 2]
         lt0, lt1 = np.log(self.T_edges[it]), np.log(self.T_edges[it + 1])
         T = np.exp(lt0 + jt * (lt1 - lt0))
         beta = (self.beta_edges[ib] + jb * (self.beta_edges[ib + 1] - self.beta_edges[ib])
@@ -283,12 +322,16 @@ class GridPosterior:
         rows = np.arange(ns)[:, None]
         mu, s = a_hat[rows, node], sd[rows, node]
         lo, hi = ndtr((self._a_lo - mu) / s), ndtr((self._a_hi - mu) / s)
-        p = np.clip(lo + rng.uniform(size=(ns, n)) * (hi - lo), 1e-300, 1 - 1e-16)
+        p = np.clip(lo + uni[:, 3] * (hi - lo), 1e-300, 1 - 1e-16)
         amp = np.clip(mu + s * ndtri(p), self._a_lo, self._a_hi)
         return node, T, beta, np.log10(amp)
 
     def summarise(self, flux, err, limit_only, *, n_draws=500, n_ppp=100, rng=None, keep_draws=False):
         """Posterior summaries for a block of sources (SI arrays, see :meth:`log_posterior`).
+
+        ``rng`` is a seed or Generator for the whole block, or a list with one
+        seed / SeedSequence / Generator per source (results then independent
+        of how sources are grouped into blocks).
 
         Returns
         -------
@@ -298,7 +341,7 @@ class GridPosterior:
             ``posterior`` (n_sources, n_T, n_beta) normalised node masses,
             ``flags`` (list of tuples), and ``draws`` when ``keep_draws``.
         """
-        rng = np.random.default_rng(rng)
+        rng = _BlockRandom(rng, flux.shape[0])
         logp, a_hat, sd, chi2 = self.log_posterior(flux, err, limit_only)
         ns = flux.shape[0]
         peak = logp.max(axis=1, keepdims=True)
@@ -360,9 +403,11 @@ class GridPosterior:
         model = (10.0**lamp)[..., None] * self._g[node]  # (n_s, n_d, nb)
         det = ~limit_only & np.isfinite(err)
         sig = np.where(det, err, 0.0)[:, None, :]
-        noise = rng.standard_normal(model.shape) * sig
-        for m, d2 in zip(self._masks, self._d2):
-            noise = noise + model * m * (np.sqrt(d2) * rng.standard_normal(model.shape[:2]))[..., None]
+        k = len(self._d2)
+        z = rng.standard_normal(model.shape[:2] + (model.shape[2] + k,))
+        noise = z[..., : model.shape[2]] * sig
+        for j, (m, d2) in enumerate(zip(self._masks, self._d2)):
+            noise = noise + model * m * (np.sqrt(d2) * z[..., model.shape[2] + j])[..., None]
         chi_obs = self._chi2(flux, err, limit_only, model)
         # replicated data: chi2 of (model + noise) against the model
         iv = np.where(det, 1.0 / np.where(det, err, 1.0) ** 2, 0.0)[:, None, :]
@@ -387,6 +432,11 @@ class GridPosterior:
             if coarse[i]:
                 fl.append("grid_too_coarse")
             flags.append(tuple(fl))
+        n_edge = sum(any(f.endswith(("_prior_low", "_prior_high")) for f in fl) for fl in flags)
+        if n_edge:
+            warnings.warn(
+                f"{n_edge} source(s) have posterior mass piled against the grid/prior edge "
+                "(flags '*_at_prior_low' / '*_at_prior_high')", GridWarning, stacklevel=3)
         n_coarse = int(np.sum(coarse & ok))
         if n_coarse:
             warnings.warn(
@@ -401,6 +451,16 @@ class GridPosterior:
     @property
     def _sd_b(self):
         return _prior_sd(self.prior["beta"])
+
+
+def source_seeds(seed, ids):
+    """One SeedSequence per source, keyed on the run seed and the source id.
+
+    A stable CRC-32 of ``str(id)`` (never Python's salted ``hash``) makes each
+    source's random numbers independent of its position, block and worker.
+    """
+    base = 0 if seed is None else int(seed)
+    return [np.random.SeedSequence([base, zlib.crc32(str(i).encode())]) for i in ids]
 
 
 def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration=None,
@@ -429,7 +489,8 @@ def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration
         Sources per vectorised block. Small blocks keep the (sources x nodes)
         work arrays in the CPU cache: 32 is ~2x faster than 256 here.
     seed : int, optional
-        Seed of the draws; each chunk gets its own stream from a SeedSequence.
+        Run seed; each source's draws come from ``SeedSequence([seed, crc32(id)])``,
+        so they do not depend on chunking.
     grid : GridPosterior, optional
         Reuse precomputed tables (the other model/prior/grid keywords are then ignored).
 
@@ -447,28 +508,31 @@ def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration
                              T_nodes=T_nodes, beta_nodes=beta_nodes)
     phot = prepare(flux, flux_err, bands.names, upper_limits=upper_limits, source_label=source_ids)
     ns = phot.flux.shape[0]
+    ids = np.asarray(source_ids) if source_ids is not None else np.arange(ns)
     n_free = len(grid.names)
-    seqs = np.random.SeedSequence(seed).spawn(max(1, -(-ns // chunk_size)))
-    parts, flags = [], []
-    for c, start in enumerate(range(0, ns, chunk_size)):
-        sl = slice(start, start + chunk_size)
-        err = np.where(phot.missing[sl], np.inf, phot.err[sl])
-        cols, extra = grid.summarise(phot.flux[sl], err, phot.limit_only[sl], n_draws=n_draws,
-                                     n_ppp=n_ppp, rng=np.random.default_rng(seqs[c]))
+    # a source with too few bands has no meaningful posterior: it is skipped and
+    # 'too_few_bands' is its only flag
+    fit_rows = np.flatnonzero(phot.n_usable >= n_free)
+    seeds = source_seeds(seed, ids)
+    parts, flags = [], {}
+    for start in range(0, fit_rows.size, chunk_size):
+        rows = fit_rows[start:start + chunk_size]
+        err = np.where(phot.missing[rows], np.inf, phot.err[rows])
+        cols, extra = grid.summarise(phot.flux[rows], err, phot.limit_only[rows], n_draws=n_draws,
+                                     n_ppp=n_ppp, rng=[seeds[i] for i in rows])
         parts.append(cols)
-        flags.extend(extra["flags"])
+        flags.update(zip(rows, extra["flags"]))
     out = Table()
-    out["id"] = np.asarray(source_ids) if source_ids is not None else np.arange(ns)
-    for key in parts[0]:
-        out[key] = np.concatenate([p[key] for p in parts])
-    few = out["n_bands_used"] < n_free
-    flag_text = []
-    for i, fl in enumerate(flags):
-        # a source with too few bands has no meaningful posterior: that is its only flag
-        flag_text.append("too_few_bands" if few[i] else ",".join(fl))
-    for key in out.colnames:
-        if key.startswith(("T_", "beta_", grid.amp_name)) and out[key].dtype.kind == "f":
-            out[key][few] = np.nan
+    out["id"] = ids
+    keys = parts[0].keys() if parts else grid.column_names()
+    for key in keys:
+        col = np.full(ns, np.nan)
+        if parts:
+            col[fit_rows] = np.concatenate([p[key] for p in parts])
+        out[key] = col
+    out["n_bands_used"] = phot.n_usable
+    out["dof"] = phot.n_usable - n_free
+    flag_text = [",".join(flags[i]) if i in flags else "too_few_bands" for i in range(ns)]
     out["flags"] = flag_text
     for key in out.colnames:
         if key.startswith("T_"):
