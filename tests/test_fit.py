@@ -202,7 +202,8 @@ def test_grid_table_and_too_few_bands(bands, model):
 
 
 def test_grid_results_do_not_depend_on_chunking(bands, model):
-    # Per-source seeds keyed on the id: the same numbers whatever the block size (exact).
+    # Per-source seeds keyed on the id: the same numbers whatever the block size,
+    # up to BLAS summation order in the (sources x bands) @ (bands x nodes) products (1e-12).
     rng = np.random.default_rng(9)
     theta = np.column_stack([np.zeros(7), rng.uniform(15, 30, 7), rng.uniform(1.2, 2.2, 7)])
     f, e, _ = simulate(model, bands, theta, 15.0, rng)
@@ -210,4 +211,4 @@ def test_grid_results_do_not_depend_on_chunking(bands, model):
     a = grid_posterior(f, e, bands, model=model, source_ids=ids, seed=5, chunk_size=3)
     b = grid_posterior(f, e, bands, model=model, source_ids=ids, seed=5, chunk_size=32)
     for col in ("T_median", "log10_mass_p16", "ppp"):
-        np.testing.assert_array_equal(a[col], b[col])
+        np.testing.assert_allclose(a[col], b[col], rtol=1e-12)
