@@ -6,7 +6,7 @@ import pytest
 
 from conftest import TRUTH, simulate
 from sedtemp.errors import ConvergenceWarning, InputError, PriorEdgeWarning
-from sedtemp.fit import fit_source, grid_posterior
+from sedtemp.fit import GridPosterior, fit_source, grid_posterior
 from sedtemp.priors import Uniform
 
 
@@ -94,6 +94,9 @@ def test_grid_matches_mcmc_with_calibration(bands, model):
         tol = 0.1 * sd + 6 * sd / np.sqrt(r.ess[name])
         for q, col in ((0.16, "p16"), (0.5, "median"), (0.84, "p84")):
             assert g[f"{name}_{col}"][0] == pytest.approx(np.quantile(r.samples[name], q), abs=tol)
+    # T-beta correlation: 500 grid draws give sd ~ (1 - rho^2) / sqrt(500) ~ 0.01; allow 0.05
+    assert g["T_beta_corr"][0] == pytest.approx(r.summary()["T_beta_corr"], abs=0.05)
+    assert g["T_beta_corr"][0] < -0.5  # the degeneracy: warmer goes with flatter
 
 
 def test_grid_coverage_of_68_and_95_percent_intervals(bands, model):
@@ -196,6 +199,7 @@ def test_grid_table_and_too_few_bands(bands, model):
     f[1, 2:] = e[1, 2:] = np.nan
     g = grid_posterior(f, e, bands, model=model, source_ids=["src-a", "src-b"], seed=0)
     assert list(g["id"]) == ["src-a", "src-b"]
+    assert list(g.colnames[1:-1]) == GridPosterior(bands, model=model).column_names()
     assert g["T_median"].unit == u.K
     assert g["flags"][1] == "too_few_bands" and np.isnan(g["T_median"][1])
     assert g["T_p16"][0] < 20.0 + 3 * (g["T_p84"][0] - g["T_p16"][0]) and g["n_bands_used"][0] == 6

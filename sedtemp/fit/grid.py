@@ -197,7 +197,7 @@ class GridPosterior:
         """Names of the summary columns :meth:`summarise` returns."""
         names = [f"T_{k}" for k in QUANTILES]
         if self.has_beta:
-            names += [f"beta_{k}" for k in QUANTILES]
+            names += [f"beta_{k}" for k in QUANTILES] + ["T_beta_corr"]
         names += [f"{self.amp_name}_{k}" for k in QUANTILES] + ["T_map"]
         names += (["beta_map"] if self.has_beta else []) + [f"{self.amp_name}_map"]
         return names + ["chi2_map", "n_bands_used", "dof", "chi2_reduced", "ppp"]
@@ -357,6 +357,10 @@ class GridPosterior:
             qb, sd_b = self._axis_quantiles(cube.sum(axis=1), self.beta_nodes, self._wb, False)
             cols.update({f"beta_{k}": v for k, v in qb.items()})
         node, T, beta, lamp = self._draw(post, a_hat, sd, max(n_draws, n_ppp, 2), rng)
+        if self.has_beta:
+            # posterior correlation of T and beta (the degeneracy), from the draws
+            dT, db = T - T.mean(axis=1, keepdims=True), beta - beta.mean(axis=1, keepdims=True)
+            cols["T_beta_corr"] = np.sum(dT * db, axis=1) / np.sqrt(np.sum(dT**2, axis=1) * np.sum(db**2, axis=1))
         qa = np.quantile(lamp, list(QUANTILES.values()), axis=1)
         cols.update({f"{self.amp_name}_{k}": qa[i] for i, k in enumerate(QUANTILES)})
         # MAP: the node maximising the posterior density with the amplitude at its

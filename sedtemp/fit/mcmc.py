@@ -130,7 +130,7 @@ def _run_chain(post_fn, p0, seed, *, ess_target, check_every, max_steps, key_idx
         burn = int(np.ceil(2 * np.max(tau)))
         n_kept = chain.shape[0] - burn
         ess = nw * n_kept / tau
-        long_enough = chain.shape[0] > _TAU_LENGTH * np.max(tau)
+        long_enough = n_kept > _TAU_LENGTH * np.max(tau)
         stable = np.all(np.abs(old_tau - tau) < _TAU_STABLE * tau)
         old_tau = tau
         if long_enough and stable and np.all(ess[key_idx] >= ess_target):
@@ -227,10 +227,9 @@ def _make_result(sampler, tau, burn, converged, post, model, bands, prior, phot,
     flat = sampler.get_chain(discard=burn, flat=True)
     lnp = sampler.get_log_prob(discard=burn, flat=True)
     nw = chain.shape[1]
-    try:
-        tau = emcee.autocorr.integrated_time(chain[burn:], tol=_TAU_LENGTH)
-    except emcee.autocorr.AutocorrError as err:
-        tau = err.tau
+    # the same length criterion as the stopping rule, on the kept part of the chain
+    tau = _autocorr(chain[burn:])
+    if chain.shape[0] - burn <= _TAU_LENGTH * np.max(tau):
         converged = False
     ess = nw * (chain.shape[0] - burn) / tau
     samples = {n: flat[:, j].copy() for j, n in enumerate(names)}

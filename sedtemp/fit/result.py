@@ -79,6 +79,8 @@ class FitResult:
             q = np.quantile(self.samples[name], list(QUANTILES.values()))
             out.update({f"{name}_{k}": float(v) for k, v in zip(QUANTILES, q)})
             out[f"{name}_map"] = float(self.map_params[name])
+        if "T" in self.samples and "beta" in self.samples:
+            out["T_beta_corr"] = float(np.corrcoef(self.samples["T"], self.samples["beta"])[0, 1])
         for name in self.param_names:
             out[f"{name}_ess"] = float(self.ess[name])
         out.update(
