@@ -94,8 +94,9 @@ def test_grid_matches_mcmc_with_calibration(bands, model):
         tol = 0.1 * sd + 6 * sd / np.sqrt(r.ess[name])
         for q, col in ((0.16, "p16"), (0.5, "median"), (0.84, "p84")):
             assert g[f"{name}_{col}"][0] == pytest.approx(np.quantile(r.samples[name], q), abs=tol)
-    # T-beta correlation: 500 grid draws give sd ~ (1 - rho^2) / sqrt(500) ~ 0.01; allow 0.05
-    assert g["T_beta_corr"][0] == pytest.approx(r.summary()["T_beta_corr"], abs=0.05)
+    # T-beta correlation: grid node moments vs MCMC draws (sd of r from ESS ~1000 draws is
+    # (1 - rho^2) / sqrt(1000) ~ 0.006); allow 0.03
+    assert g["T_beta_corr"][0] == pytest.approx(r.summary()["T_beta_corr"], abs=0.03)
     assert g["T_beta_corr"][0] < -0.5  # the degeneracy: warmer goes with flatter
 
 
