@@ -1,0 +1,223 @@
+"""Tests of sedtemp.equilibrium: T_eq, mean opacities, implied U, timescales, tables."""
+
+import astropy.units as u
+import numpy as np
+import pytest
+from astropy.table import Table
+from scipy.integrate import quad
+from scipy.optimize import brentq
+
+from sedtemp.equilibrium import (
+    GasDustMedium,
+    Grain,
+    absorbed_power,
+    absorption_mean_opacity,
+    cooling_timescale,
+    emission_mean_opacity,
+    emitted_power,
+    equilibrium_temperature,
+    heating_timescale,
+    implied_U,
+    predict_table,
+    stochastic_heating_check,
+    temperature_for_power,
+)
+from sedtemp.errors import InputError
+from sedtemp.opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
+from sedtemp.planck import _planck_nu_si
+from sedtemp.radiation import CMB, CMB_T0, ISRF, Blackbody, Star
+
+GREY = PowerLawOpacity(1.0, 1e12, beta=0)  # PowerLawOpacity(kappa0, nu0, beta=0) is grey
+PL2 = PowerLawOpacity(10.0, 1e12, beta=2.0)
+#: big grain: a = 0.1 um, Beckwith et al. (1990) far-IR law per dust mass (from memory)
+BIG = SaturatedPowerLawOpacity(10.0, 1e12, 2.0, grain_radius=0.1 * u.um)
+TAB = TabulatedOpacity(np.array([0.1, 1.0, 10.0, 100.0, 1000.0]) * u.um,
+                       np.array([3e4, 1e4, 8e2, 30.0, 0.4]) * u.cm**2 / u.g)
+WIDE = np.geomspace(1e8, 1e17, 8001)  # Hz; holds a 30 000 K blackbody to 1e-9
+
+
+@pytest.mark.parametrize("opacity", [GREY, PL2, BIG, TAB], ids=["grey", "beta2", "saturated", "table"])
+def test_isotropic_blackbody_gives_its_temperature(opacity):
+    # exact (Kirchhoff): J = B(T_rad) gives T_eq = T_rad for any kappa_nu.
+    # 1e-4: the accuracy target; absorption on the 8001-node grid, emission analytic or tabulated.
+    for t_rad in (8.0, 60.0, 900.0):
+        t = equilibrium_temperature(Blackbody(t_rad), opacity, nu_grid=WIDE)
+        assert t.to_value(u.K) == pytest.approx(t_rad, rel=1e-4)
+
+
+@pytest.mark.parametrize("beta", [0.0, 1.0, 1.8, 2.5])
+def test_diluted_blackbody_power_law(beta):
+    # exact: J = W B(T*), kappa ~ nu^beta  ->  T_eq = W^(1/(4+beta)) T*
+    kap = PL2.with_beta(beta)
+    t = equilibrium_temperature(Blackbody(6000.0, dilution=1e-12), kap, nu_grid=WIDE)
+    assert t.to_value(u.K) == pytest.approx(1e-12 ** (1 / (4 + beta)) * 6000.0, rel=1e-4)
+
+
+def test_perfect_absorber_at_one_au():
+    # Textbook value (e.g. T = 278.3 K (L/L_sun)^(1/4) (d/au)^(-1/2); common practice),
+    # computed here from the IAU 2015 nominal solar values: T = T_eff sqrt(R_sun / 2 au).
+    sun = Star(teff=5772 * u.K, luminosity=1 * u.L_sun, distance=1 * u.au)
+    t = equilibrium_temperature(sun, GREY).to_value(u.K)
+    assert t == pytest.approx(5772 * np.sqrt(6.957e8 / (2 * 1.495978707e11)), rel=1e-4)
+    assert t == pytest.approx(278.3, abs=0.1)
+
+
+def test_U_scaling_vectorised_over_U_and_beta():
+    # exact for a power law: T ~ U^(1/(4+beta)), absorbed power is linear in U
+    U = np.geomspace(0.1, 1e4, 5)
+    beta = np.array([[1.5], [2.0]])
+    t = equilibrium_temperature(ISRF(), PL2, scale=U, beta=beta).to_value(u.K)
+    assert t.shape == (2, 5)
+    t1 = equilibrium_temperature(ISRF(), PL2, beta=beta).to_value(u.K)
+    np.testing.assert_allclose(t, t1 * U ** (1 / (4 + beta)), rtol=1e-12)
+    # scaling the field object or the scale factor is the same (exact)
+    assert equilibrium_temperature(ISRF(7.0), BIG).value == pytest.approx(
+        equilibrium_temperature(ISRF(), BIG, scale=7.0).value, rel=1e-12)
+
+
+def test_cmb_only():
+    # exact: the CMB is a blackbody of T0 (1+z) (Fixsen 2009 T0), so T_eq = T0 (1+z)
+    for z in (0.0, 4.0):
+        for kap in (PL2, BIG):
+            assert equilibrium_temperature(CMB(z), kap).to_value(u.K) == pytest.approx(CMB_T0 * (1 + z), rel=1e-4)
+
+
+def test_big_grain_in_isrf_matches_diffuse_ism():
+    # Boulanger et al. (1996, A&A 312, 256): high-latitude HI-correlated dust has
+    # T = 17.5 K for beta = 2; Planck Collaboration XI (2014, A&A 571, A11): mean
+    # 19.7 K with beta = 1.6 (both from memory). The model must land in 16-21 K.
+    t = equilibrium_temperature(ISRF(1.0) + CMB(), BIG).to_value(u.K)
+    assert 16.0 < t < 21.0
+    t16 = equilibrium_temperature(ISRF(1.0) + CMB(), BIG, beta=1.6).to_value(u.K)
+    assert 16.0 < t16 < 21.0
+
+
+def test_temperature_for_power_inverts_emission():
+    # reference: scipy brentq on a direct 40001-node integral of kappa B; 1e-4 target
+    nu = np.geomspace(1e7, 2e16, 40001)
+
+    def emit(t, b):
+        return 4 * np.pi * np.trapezoid(BIG.kappa_si(nu, b) * _planck_nu_si(nu, t) * nu, np.log(nu))
+
+    p = np.array([1e-3, 0.3, 20.0, 3e3, 1e6])
+    b = np.array([1.1, 1.37, 1.92, 2.33, 2.0])  # off the 0.05 beta nodes
+    t = temperature_for_power(p, BIG, beta=b)
+    ref = [brentq(lambda x: emit(x, bb) - pp, 0.6, 4000, rtol=1e-12) for pp, bb in zip(p, b)]
+    np.testing.assert_allclose(t, ref, rtol=1e-4)
+    np.testing.assert_allclose(emitted_power(ref, BIG, beta=b), p, rtol=1e-4)
+    # power law: analytic, exact against scipy quad of nu^beta B
+    val = quad(lambda x: 4 * np.pi * 1.0 * (x / 1e12) ** 1.5 * _planck_nu_si(x, 20.0), 1e8, 1e15, limit=200)[0]
+    assert emitted_power(20.0, PL2, beta=1.5) == pytest.approx(val, rel=1e-8)
+    assert temperature_for_power(0.0, PL2) == 0.0
+
+
+def test_mean_opacities_reproduce_teq():
+    # exact identity: T_eq^4 = (pi / sigma) kappa_abs int J dnu / kappa_P(T_eq)
+    from sedtemp.planck import SIGMA_SB
+
+    fld = ISRF(3.0)
+    t = equilibrium_temperature(fld, BIG).to_value(u.K)
+    k_abs = absorption_mean_opacity(fld, BIG).to_value(u.m**2 / u.kg)
+    k_p = emission_mean_opacity(t, BIG).to_value(u.m**2 / u.kg)
+    j_int = fld.energy_density(n=4001).to_value(u.J / u.m**3) * 2.99792458e8 / (4 * np.pi)
+    assert t**4 == pytest.approx(np.pi / SIGMA_SB * k_abs * j_int / k_p, rel=1e-5)
+    # for starlight the saturated opacity absorbs at its geometric cap, 3/(4 a rho) = 2500 m2/kg
+    assert k_abs == pytest.approx(2500.0, rel=0.01)
+
+
+def test_implied_U_inverts_teq():
+    # exact: absorbed power is linear in U
+    for kap in (PL2, BIG):
+        t = equilibrium_temperature(ISRF(), kap, scale=[0.3, 40.0])
+        np.testing.assert_allclose(implied_U(t, kap), [0.3, 40.0], rtol=1e-4)
+        np.testing.assert_allclose(implied_U(t, kap, base=ISRF(2.0)), [0.3, 40.0], rtol=1e-4)
+    t = equilibrium_temperature(ISRF(5.0) + CMB(), BIG)
+    assert implied_U(t, BIG, fixed=CMB()) == pytest.approx(5.0, rel=1e-4)
+    assert np.isnan(implied_U(2.0, BIG, fixed=CMB()))  # colder than the CMB alone allows
+
+
+def test_absorbed_power_per_component_and_many_betas():
+    fld = ISRF(2.0) + Star(20000 * u.K, luminosity=1e4 * u.L_sun, distance=1 * u.pc)
+    parts = absorbed_power(fld, BIG, per_component=True)
+    assert parts.shape == (2,)
+    assert parts.sum() == pytest.approx(absorbed_power(fld, BIG), rel=1e-12)  # linearity, exact
+    # 600 distinct betas use a spline over 256 nodes; direct evaluation is the reference
+    b = np.linspace(1.0, 2.5, 600)
+    direct = np.array([absorbed_power(ISRF(), PL2, beta=x) for x in b[::50]])
+    np.testing.assert_allclose(absorbed_power(ISRF(), PL2, beta=b)[::50], direct, rtol=1e-7)
+
+
+def test_grain_heat_capacity_draine_li():
+    # Draine & Li (2001, eq. 11): high-T limit C -> 3 (N - 2) k (Dulong-Petit), exact
+    g = Grain(0.01 * u.um)
+    from sedtemp.planck import K_BOLTZMANN
+
+    assert g.heat_capacity_si(1e5) == pytest.approx(3 * (g.n_atoms - 2) * K_BOLTZMANN, rel=1e-3)
+    # E(T) = int C dT (scipy quad as reference), including the low-T Debye regime
+    for t in (5.0, 30.0, 300.0):
+        ref = quad(lambda x: float(g.heat_capacity_si(x)), 0.0, t, limit=200)[0]
+        assert g.thermal_energy_si(t) == pytest.approx(ref, rel=1e-6)
+
+
+def test_timescales_grain_and_medium():
+    g = Grain(0.1 * u.um)
+    # at T_eq absorbed = emitted, so t_heat = t_cool (exact)
+    t_eq = equilibrium_temperature(ISRF(), BIG)
+    assert heating_timescale(ISRF(), BIG, g).value == pytest.approx(cooling_timescale(t_eq, BIG, g).value, rel=1e-4)
+    # medium: (3/2 n k T) / (rho_gas P_abs), exact for a per-gas opacity
+    from sedtemp.planck import K_BOLTZMANN
+
+    gas = PowerLawOpacity(0.1, 1e12, 2.0, per="gas")
+    med = GasDustMedium(1e4, mu=2.37)
+    t = equilibrium_temperature(ISRF(), gas).value
+    p = absorbed_power(ISRF(), gas)
+    expect = 1.5 * 1e10 * K_BOLTZMANN * t / (1e10 * 2.37 * 1.6735e-27 * p)
+    assert heating_timescale(ISRF(), gas, med).to_value(u.s) == pytest.approx(expect, rel=1e-4)
+    with pytest.raises(InputError, match="per dust mass"):
+        heating_timescale(ISRF(), gas, g)
+
+
+def test_stochastic_heating_flags_small_grains():
+    # Draine & Li (2001, sec. 1; Draine 2011 sec. 24.3): grains of a few angstrom
+    # are stochastically heated in the ISRF; 0.1 um grains are in equilibrium.
+    big = stochastic_heating_check(ISRF(), BIG, Grain(0.1 * u.um))
+    assert not big.stochastic and big.thermal_energy.to_value(u.eV) > 1e3
+    tiny_kap = SaturatedPowerLawOpacity(10.0, 1e12, 2.0, grain_radius=5e-4)
+    tiny = stochastic_heating_check(ISRF(), tiny_kap, Grain(5e-4), scale=[1.0, 1e3])
+    assert tiny.stochastic.tolist() == [True, True]
+    # mean absorbed photon energy of the MMP83 starlight: between 1 and 13.6 eV (its range)
+    assert 1.0 < big.mean_photon_energy.to_value(u.eV) < 13.6
+
+
+def test_predict_table_columns():
+    star = Star(20000 * u.K, luminosity=1e4 * u.L_sun, distance=1 * u.pc)
+    tab = Table({"name": ["a", "b", "c"], "U": [1.0, 1.0, 10.0], "d": [1.0, 2.0, 1.0] * u.pc,
+                 "av": [0.0, 0.0, 3.0]})
+    out = predict_table(tab, BIG, U_column="U", star=star, star_distance_column="d", A_V_column="av")
+    # each row against an independent field built by hand (exact same integrals)
+    for i, d in enumerate([1.0, 2.0, 1.0]):
+        s = Star(20000 * u.K, luminosity=1e4 * u.L_sun, distance=d * u.pc)
+        f = ISRF(tab["U"][i]) + s
+        f = f.attenuated(tab["av"][i]) if tab["av"][i] > 0 else f
+        assert out["T_eq"][i] == pytest.approx(equilibrium_temperature(f, BIG).value, rel=1e-9)
+    assert out["T_eq"].unit == u.K and list(out["name"]) == ["a", "b", "c"]
+    assert out["G0_local"][0] > out["G0_local"][2]
+    with pytest.raises(InputError, match="has no unit"):
+        predict_table(Table({"d": [1.0]}), BIG, star=star, star_distance_column="d")
+    with pytest.raises(InputError, match="no column 'U'"):
+        predict_table(Table({"x": [1.0]}), BIG, U_column="U")
+    with pytest.raises(InputError, match="no field"):
+        predict_table(tab, BIG)
+
+
+def test_input_errors():
+    with pytest.raises(InputError, match="power_per_mass must be finite and >= 0"):
+        temperature_for_power(-1.0, PL2)
+    with pytest.raises(InputError, match="scale must be finite and >= 0"):
+        equilibrium_temperature(ISRF(), PL2, scale=[-1.0])
+    with pytest.raises(InputError, match="nu_grid must be a 1-D increasing array"):
+        equilibrium_temperature(ISRF(), PL2, nu_grid=[3.0, 2.0, 1.0])
+    with pytest.raises(InputError, match="must be a sedtemp.radiation field"):
+        absorbed_power("isrf", PL2)
+    with pytest.raises(InputError, match="material must be one of"):
+        Grain(0.1, material="ice")
