@@ -19,7 +19,9 @@ from .errors import (
 from .fit import FitResult, fit_source, grid_posterior
 from .likelihood import Calibration
 from .models import ModifiedBlackbody, ThickModifiedBlackbody, TwoTemperatureModel
-from .opacity import PowerLawOpacity, TabulatedOpacity
+from .equilibrium import equilibrium_temperature, implied_U
+from .opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
+from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
 from .planck import planck_nu
 from .priors import Gaussian, LogUniform, Prior, Uniform, UniformAmplitude
 
@@ -40,7 +42,15 @@ __all__ = [
     "ThickModifiedBlackbody",
     "TwoTemperatureModel",
     "PowerLawOpacity",
+    "SaturatedPowerLawOpacity",
     "TabulatedOpacity",
+    "ISRF",
+    "Star",
+    "CMB",
+    "Blackbody",
+    "Tabulated",
+    "equilibrium_temperature",
+    "implied_U",
     "planck_nu",
     "Prior",
     "Uniform",
