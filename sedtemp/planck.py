@@ -42,17 +42,17 @@ _PREFACTOR = 2.0 * H_PLANCK / C_LIGHT**2
 def _planck_nu_si(nu_hz, t_k):
     """B_nu(T) in W m^-2 Hz^-1 sr^-1 for broadcastable float arrays (Hz, K).
 
-    Written as 2 h nu^3 / c^2 * e^-x / (1 - e^-x) with x = h nu / k T, which
-    never overflows: for large x, e^-x underflows quietly to 0 (x up to 1e4
-    and beyond returns 0 without a warning), and for small x,
-    -expm1(-x) keeps full precision. T = 0 gives 0; nu = 0 gives 0.
+    Written as 2 h nu^3 / c^2 / expm1(x) with x = h nu / k T: one
+    transcendental call per element (this is the MCMC hot path), full
+    precision for small x, and for x > ~709 expm1 overflows to inf, which is
+    silenced here and gives exactly 0 (so x up to 1e4 and beyond returns 0
+    without a warning). T = 0 gives 0; nu = 0 gives 0.
     """
     nu = np.asarray(nu_hz, dtype=float)
     t = np.asarray(t_k, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
         x = _H_OVER_K * nu / t
-        em = np.exp(-x)
-        out = _PREFACTOR * nu**3 * em / (-np.expm1(-x))
+        out = (_PREFACTOR * nu**3) / np.expm1(x)
     # nu = 0 or T = 0 produce 0/0 or inf*0: both limits are 0.
     return np.where(np.isfinite(out), out, 0.0)
 

@@ -14,6 +14,7 @@ import pytest
 from astropy.table import Table
 from scipy.integrate import quad
 
+from sedtemp.bands import _DEFAULT_TOPHAT_NODES as NT
 from sedtemp.bands import Band, BandSet
 from sedtemp.errors import InputError
 from sedtemp.planck import C_LIGHT, _planck_nu_si
@@ -194,7 +195,7 @@ def test_bandset_grid_and_weights_structure():
     bs = BandSet([b1, b2, b3, b4])
     g = bs.nu_grid_hz
     assert np.all(np.diff(g) > 0)
-    assert g.size == 101 + 51 + 1  # shared top-hat nodes merged
+    assert g.size == NT + 51 + 1  # shared top-hat nodes merged
     assert bs.weights.shape == (4, g.size)
     for i, b in enumerate(bs):
         idx = np.searchsorted(g, b.nu_hz)
@@ -237,7 +238,7 @@ def test_band_fluxes_keeps_quantity_unit():
     # Exact: a flat spectrum in a top-hat quoted for nu F_nu = const gives
     # F = int dnu / int (nu_c/nu) dnu * 2 = 2 (hi - lo) / (nu_c ln(hi/lo)).
     lo, hi = 1 - 0.15, 1 + 0.15
-    tol = _trapezoid_bound(lambda x: 1 / x, np.linspace(lo, hi, 101)) / np.log(hi / lo)
+    tol = _trapezoid_bound(lambda x: 1 / x, np.linspace(lo, hi, NT)) / np.log(hi / lo)
     assert abs(out.value[0] / (2 * (hi - lo) / np.log(hi / lo)) - 1) <= 1.01 * tol
 
 
@@ -252,9 +253,9 @@ def test_bandset_container_protocol():
     assert sub.names == ("c", "a")
     np.testing.assert_array_equal(sub.weights[1, np.searchsorted(sub.nu_grid_hz, a.nu_hz)], a.weights)
     assert bs.subset("b").names == ("b",)
-    assert repr(bs) == "BandSet(['a', 'b', 'c'], n_grid=203)"
+    assert repr(bs) == f"BandSet(['a', 'b', 'c'], n_grid={2 * NT + 1})"
     assert repr(c) == "Band('c', monochromatic at 850 um)"
-    assert repr(a) == "Band('a', 101 nodes, nu_ref at 100 um, detector='energy', reference='nu_fnu')"
+    assert repr(a) == f"Band('a', {NT} nodes, nu_ref at 100 um, detector='energy', reference='nu_fnu')"
 
 
 def test_bare_numbers_are_micrometres():
@@ -418,7 +419,7 @@ def test_bandset_errors():
         bs[2]
     with pytest.raises(InputError, match="bands are indexed by name or integer, got float"):
         bs[0.5]
-    with pytest.raises(InputError, match=r"spectrum_on_grid must have last axis of length n_grid = 102 "
+    with pytest.raises(InputError, match=rf"spectrum_on_grid must have last axis of length n_grid = {NT + 1} "
                        r"\(BandSet.nu_grid_hz\), got shape \(3, 5\)"):
         bs.band_fluxes(np.ones((3, 5)))
 
@@ -428,7 +429,7 @@ def test_color_correction_errors():
     with pytest.raises(InputError, match="spectrum must be a callable f\\(nu_hz\\) -> flux density array, got ndarray"):
         bs.color_correction(np.ones(3))
     with pytest.raises(InputError, match=r"spectrum\(nu_grid_hz\) must return an array whose last axis has "
-                       r"length 102, got shape \(\)"):
+                       rf"length {NT + 1}, got shape \(\)"):
         bs.color_correction(lambda nu: 1.0)
     with pytest.raises(InputError, match=r"spectrum\(nu_grid_hz\) returned non-finite values"):
         bs.color_correction(lambda nu: np.full_like(nu, np.nan))
