@@ -1,0 +1,183 @@
+"""Chunked runs: per-source seeds, independence of chunking and workers, checkpoints, failures."""
+
+import hashlib
+
+import astropy.units as u
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from sedtemp import pipeline
+from sedtemp.bands import Band, BandSet
+from sedtemp.batch import InlineExecutor, run_batch
+from sedtemp.catalog import map_catalog
+from sedtemp.config import parse_workflow
+from sedtemp.errors import ConfigError
+from sedtemp.models import ModifiedBlackbody
+
+WAVE = (70, 160, 250, 350, 500)
+
+
+def make_catalog(n, seed=3):
+    """Invented thin-dust sources at 400 pc in five top-hat bands, 8 % noise (test data only)."""
+    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in WAVE])
+    model = ModifiedBlackbody(distance=400 * u.pc)
+    rng = np.random.default_rng(seed)
+    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
+    f = bs.band_fluxes(model.sed_si(bs.nu_grid_hz, theta)) / 1e-26
+    e = 0.08 * f
+    f = f + e * rng.standard_normal(f.shape)
+    t = Table()
+    t["name"] = [f"S{i:03d}" for i in range(n)]
+    for j, w in enumerate(WAVE):
+        t[f"F{w}"] = f[:, j] * u.Jy
+        t[f"E{w}"] = e[:, j] * u.Jy
+    return t
+
+
+def make_workflow(**run):
+    bands = {f"b{w}": {"flux": f"F{w}", "error": f"E{w}", "tophat": {"center": f"{w} um", "width": 0.3}}
+             for w in WAVE}
+    return parse_workflow({
+        "run": {"seed": 11, "executor": "serial", "chunk_size": 4, **run},
+        "catalog": {"path": "cat.ecsv", "id_column": "name", "distance": "400 pc"},
+        "bands": bands, "fit": {"n_T": 40, "n_beta": 24, "n_draws": 200},
+        "priors": {"T": {"kind": "uniform", "low": 5.0, "high": 60.0},
+                   "beta": {"kind": "uniform", "low": 0.5, "high": 3.0}},
+        "output": {"n_keep": 50},
+    })
+
+
+def _same(a, b, rtol=0.0):
+    assert a.colnames == b.colnames
+    for c in a.colnames:
+        x, y = np.asarray(a[c]), np.asarray(b[c])
+        if x.dtype.kind == "f":
+            # rtol=0: bit-identical (same seeds, same arithmetic); see the Dask test for rtol > 0
+            np.testing.assert_allclose(x, y, rtol=rtol, atol=0, err_msg=c)
+        else:
+            assert x.tolist() == y.tolist(), c
+
+
+@pytest.fixture(scope="module")
+def catalog():
+    return make_catalog(14)
+
+
+@pytest.fixture(scope="module")
+def reference(catalog):
+    wf = make_workflow()
+    return run_batch(map_catalog(catalog, wf), wf, keep_draws=True)
+
+
+def test_source_seed_is_workflow_seed_and_stable_id_hash():
+    h = int.from_bytes(hashlib.blake2b(b"S007", digest_size=8).digest(), "little")
+    expect = np.random.SeedSequence([11, h]).generate_state(4)
+    np.testing.assert_array_equal(pipeline.source_seed(11, "S007").generate_state(4), expect)
+    assert not np.array_equal(pipeline.source_seed(11, "S008").generate_state(4), expect)
+    assert not np.array_equal(pipeline.source_seed(12, "S007").generate_state(4), expect)
+
+
+def test_results_in_catalogue_order_with_id_first(reference, catalog):
+    assert reference.colnames[0] == "name"
+    assert reference["name"].tolist() == catalog["name"].tolist()
+    assert set(reference["status"]) == {"ok"}
+    assert reference["T_median"].unit == u.K and reference["log10_mass_median"].unit == u.dex(u.solMass)
+    assert reference.meta["workflow_sha256"] == make_workflow().digest
+    assert reference["draws_T"].shape == (14, 50)
+
+
+def test_grid_rows_equal_direct_grid_posterior(reference, catalog):
+    """A row equals GridPosterior.summarise on that source alone with its own seed (exact)."""
+    wf = make_workflow()
+    m = map_catalog(catalog, wf)
+    grid = pipeline._grid_for(wf, 0.0, m.distance_m[5])
+    seq, _ = pipeline.source_seed(11, "S005").spawn(2)
+    cols, _ = grid.summarise(m.flux[5:6], m.err[5:6], m.limit_only[5:6], n_draws=200,
+                             rng=np.random.default_rng(seq), keep_draws=True)
+    for key in ("T_median", "T_p16", "beta_p84", "log10_mass_median", "ppp", "chi2_map"):
+        assert reference[key][5] == cols[key][0], key
+
+
+@pytest.mark.parametrize("run", [{"chunk_size": 5, "executor": "process", "workers": 1},
+                                 {"chunk_size": 3, "executor": "process", "workers": 2}])
+def test_same_results_any_chunking_and_worker_count(reference, catalog, run):
+    wf = make_workflow(**run)
+    _same(run_batch(map_catalog(catalog, wf), wf, keep_draws=True), reference)
+
+
+def test_dask_local_cluster_same_results(reference, catalog):
+    pytest.importorskip("distributed")
+    wf = make_workflow(executor="dask", workers=2, chunk_size=6)
+    # Dask's nanny starts workers with OMP_NUM_THREADS=1, so BLAS may sum the grid's matrix
+    # products in another order: rounding-level differences (observed 3e-15), hence 1e-12
+    _same(run_batch(map_catalog(catalog, wf), wf, keep_draws=True), reference, rtol=1e-12)
+
+
+def test_resume_from_checkpoints(tmp_path, reference, catalog):
+    wf = make_workflow()
+    m = map_catalog(catalog, wf)
+    full = run_batch(m, wf, output_dir=tmp_path)
+    parts = sorted((tmp_path / "parts").glob("part-*.ecsv"))
+    assert len(parts) == 4  # 14 sources in chunks of 4
+    parts[1].unlink()
+    parts[3].unlink()  # as if killed before these chunks finished
+    (tmp_path / "parts" / ".tmp-part-000000099.ecsv").write_text("half-written")
+    again = run_batch(m, wf, output_dir=tmp_path)
+    _same(again, full)
+    _same(full, reference[[c for c in reference.colnames if not c.startswith("draws_")]])
+    assert sorted(p.name for p in (tmp_path / "parts").iterdir()) == [p.name for p in parts]
+    on_disk = Table.read(tmp_path / "results.ecsv")
+    assert on_disk["name"].tolist() == catalog["name"].tolist()  # every source exactly once
+    np.testing.assert_array_equal(on_disk["T_median"], full["T_median"])
+    report = (tmp_path / "results-report.txt").read_text()
+    assert "sources: 14 (14 ok, 0 skipped, 0 failed)" in report
+    assert "(8 resumed from checkpoints)" in report
+
+
+def test_other_workflow_in_same_directory_refused(tmp_path, catalog):
+    wf = make_workflow()
+    run_batch(map_catalog(catalog[:4], wf), wf, output_dir=tmp_path)
+    other = make_workflow(seed=12)
+    with pytest.raises(ConfigError, match=r"holds a run of a different workflow; use another \[output\] directory"):
+        run_batch(map_catalog(catalog[:4], other), other, output_dir=tmp_path)
+    res = run_batch(map_catalog(catalog[:4], other), other, output_dir=tmp_path, restart=True)
+    assert len(res) == 4
+
+
+def test_failed_source_has_reason_and_run_goes_on(monkeypatch, catalog):
+    real = pipeline._fit_grid
+
+    def flaky(wf, mapped, i, rng):
+        if mapped.keys[i] == "S002":
+            raise FloatingPointError("invented failure")
+        return real(wf, mapped, i, rng)
+
+    monkeypatch.setattr(pipeline, "_fit_grid", flaky)
+    wf = make_workflow()
+    res = run_batch(map_catalog(catalog[:5], wf), wf, executor=InlineExecutor())
+    assert res["status"].tolist() == ["ok", "ok", "failed", "ok", "ok"]
+    assert res["reason"][2] == "fit: FloatingPointError: invented failure"
+    assert np.isnan(res["T_median"][2]) and np.isfinite(res["T_median"][3])
+
+
+def test_skipped_source_row(catalog):
+    t = catalog[:3].copy()
+    for w in WAVE[1:]:
+        t[f"F{w}"][1], t[f"E{w}"][1] = np.nan, np.nan
+    wf = make_workflow()
+    res = run_batch(map_catalog(t, wf), wf)
+    assert res["status"].tolist() == ["ok", "skipped", "ok"]
+    assert res["reason"][1] == "too_few_bands: 1 usable band(s) ['b70'], need 3"
+
+
+def test_draws_written_to_hdf5(tmp_path, catalog):
+    h5py = pytest.importorskip("h5py")
+    wf = make_workflow()
+    wf.output["keep_draws"] = True
+    res = run_batch(map_catalog(catalog[:6], wf), wf, output_dir=tmp_path)
+    with h5py.File(tmp_path / "results-draws.h5", "r") as h5:
+        assert [v.decode() for v in h5["id"][:]] == res["name"].tolist()
+        np.testing.assert_array_equal(h5["T"][:], np.asarray(res["draws_T"]))
+        assert h5.attrs["workflow_sha256"] == wf.digest
+    assert "draws_T" not in Table.read(tmp_path / "results.ecsv").colnames

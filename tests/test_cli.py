@@ -1,0 +1,172 @@
+"""The sedtemp command, in-process; python -m sedtemp; resume after SIGKILL in a subprocess."""
+
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import astropy.units as u
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from sedtemp import __version__
+from sedtemp.cli import main
+
+WAVE = (70, 160, 250, 350, 500)
+
+
+def _catalog(n, seed=5):
+    """Invented sources (test data only): modified blackbodies at 400 pc, 8 % noise."""
+    from sedtemp.bands import Band, BandSet
+    from sedtemp.models import ModifiedBlackbody
+
+    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in WAVE])
+    rng = np.random.default_rng(seed)
+    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
+    f = bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta)) / 1e-29
+    e = 0.08 * f
+    t = Table()
+    t["name"] = [f"S{i:03d}" for i in range(n)]
+    for j, w in enumerate(WAVE):
+        t[f"F{w}"] = (f[:, j] + e[:, j] * rng.standard_normal(n)) * u.mJy
+        t[f"E{w}"] = e[:, j] * u.mJy
+    return t
+
+
+def _workflow_text(extra_fit="", executor="serial", chunk=4):
+    bands = "\n".join(f'[bands.b{w}]\nflux = "F{w}"\nerror = "E{w}"\n'
+                      f'tophat = {{ center = "{w} um", width = 0.3 }}\n' for w in WAVE)
+    return f"""
+[run]
+seed = 3
+executor = "{executor}"
+chunk_size = {chunk}
+
+[catalog]
+path = "cat.ecsv"
+id_column = "name"
+distance = "400 pc"
+
+{bands}
+[fit]
+n_T = 40
+n_beta = 24
+n_draws = 200
+{extra_fit}
+
+[priors.T]
+kind = "uniform"
+low = 5.0
+high = 60.0
+
+[output]
+directory = "out"
+"""
+
+
+@pytest.fixture
+def case(tmp_path):
+    _catalog(10).write(tmp_path / "cat.ecsv")
+    wf = tmp_path / "wf.toml"
+    wf.write_text(_workflow_text())
+    return tmp_path, wf
+
+
+def test_check_valid(case, capsys):
+    _, wf = case
+    assert main(["check", str(wf)]) == 0
+    out = capsys.readouterr().out
+    assert "workflow valid; catalogue 'cat.ecsv': 10 source(s), 5 band(s), 0 to be skipped" in out
+
+
+def test_check_reports_catalogue_problems_on_one_line(case, capsys):
+    tmp, wf = case
+    t = Table.read(tmp / "cat.ecsv")
+    t["E160"][3] = -1.0
+    t.write(tmp / "cat.ecsv", overwrite=True)
+    assert main(["check", str(wf)]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1  # one line
+    assert err.startswith("sedtemp check: error: catalogue 'cat.ecsv' has 1 problem(s): - band 'b160': "
+                          "error is not positive for 1 source(s): 'S003'")
+
+
+def test_config_error_and_debug_traceback(case, capsys):
+    tmp, wf = case
+    wf.write_text(wf.read_text().replace("[fit]", "[fit]\nmethdo = 'grid'"))
+    assert main(["check", str(wf)]) == 1
+    err = capsys.readouterr().err
+    assert "sedtemp check: error: wf.toml line" in err and "[fit] 'methdo': unknown key" in err
+    assert "Traceback" not in err
+    assert main(["check", str(wf), "--debug"]) == 1
+    assert "Traceback (most recent call last)" in capsys.readouterr().err
+
+
+def test_run_writes_results_report_and_plot(case, capsys):
+    tmp, wf = case
+    assert main(["run", str(wf), "--quiet"]) == 0
+    assert capsys.readouterr().out == ""  # --quiet: nothing on stdout
+    res = Table.read(tmp / "out" / "results.ecsv")
+    assert res.colnames[0] == "name" and len(res) == 10 and set(res["status"]) == {"ok"}
+    assert res.meta["sedtemp_version"] == __version__
+    assert (tmp / "out" / "results-report.txt").read_text().startswith(f"sedtemp {__version__} run report")
+    assert (tmp / "out" / "population.png").stat().st_size > 0
+    assert main(["plot", str(tmp / "out" / "results.ecsv"), "--output", str(tmp / "figs")]) == 0
+    assert (tmp / "figs" / "population.png").exists()
+
+
+def test_plot_errors(case, capsys):
+    tmp, _ = case
+    assert main(["plot", str(tmp / "none.ecsv")]) == 1
+    assert "sedtemp plot: error: results file" in capsys.readouterr().err
+
+
+def test_usage_error_returns_2(capsys):
+    assert main(["frobnicate"]) == 2
+    assert "invalid choice: 'frobnicate'" in capsys.readouterr().err
+
+
+def test_python_dash_m():
+    out = subprocess.run([sys.executable, "-m", "sedtemp", "--version"], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0 and out.stdout.strip() == f"sedtemp {__version__}"
+
+
+def test_resume_after_sigkill(tmp_path):
+    """Kill the run once the first chunk is written; the rerun equals an uninterrupted run."""
+    _catalog(12).write(tmp_path / "cat.ecsv")
+    # the last sources go through emcee so the run lasts long enough to be killed mid-way
+    mcmc = 'mcmc_sources = ["S009", "S010", "S011"]\nn_walkers = 16\ness_target = 40\nmax_steps = 600'
+    wf = tmp_path / "wf.toml"
+    wf.write_text(_workflow_text(mcmc, chunk=2))
+    cmd = [sys.executable, "-m", "sedtemp", "run", str(wf), "--quiet"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    parts = tmp_path / "out" / "parts"
+    t0 = time.time()
+    while not list(parts.glob("part-*.ecsv")) and proc.poll() is None and time.time() - t0 < 120:
+        time.sleep(0.05)
+    assert proc.poll() is None, "run ended before it could be killed"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    assert not (tmp_path / "out" / "results.ecsv").exists()
+    n_done = len(list(parts.glob("part-*.ecsv")))
+    assert 1 <= n_done < 6
+    rerun = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+    assert rerun.returncode == 0, rerun.stderr
+    resumed = Table.read(tmp_path / "out" / "results.ecsv")
+    assert resumed["name"].tolist() == [f"S{i:03d}" for i in range(12)]  # none lost, none twice
+    report = (tmp_path / "out" / "results-report.txt").read_text()
+    assert f"({2 * n_done} resumed from checkpoints)" in report
+    # uninterrupted reference run of the same command in a fresh process (same environment:
+    # BLAS thread settings of this test process may differ after other tests), another folder
+    ref_run = subprocess.run(cmd + ["--output", str(tmp_path / "ref")], capture_output=True, text=True, timeout=300)
+    assert ref_run.returncode == 0, ref_run.stderr
+    ref = Table.read(tmp_path / "ref" / "results.ecsv")
+    assert ref.colnames == resumed.colnames
+    for c in ref.colnames:
+        if ref[c].dtype.kind == "f":
+            np.testing.assert_array_equal(np.asarray(resumed[c]), np.asarray(ref[c]), err_msg=c)
+        else:
+            assert resumed[c].tolist() == ref[c].tolist(), c
+    assert resumed["method"].tolist() == ["grid"] * 9 + ["mcmc"] * 3
