@@ -188,6 +188,19 @@ class PhotometryLikelihood:
         chi2, logdet = self.chi2_and_logdet(model_flux)
         return self._const - 0.5 * (chi2 + logdet) + self.limit_term(model_flux)
 
+    def predictive_chi2(self, model_flux, rng):
+        """chi^2 of the data and of one replicated data set at each model, (n,), (n,).
+
+        The posterior predictive p-value is the fraction of posterior draws
+        whose replicated chi^2 exceeds the observed one.
+        """
+        m = np.atleast_2d(model_flux)
+        chi_obs = self.chi2_and_logdet(m)[0]
+        rep = self.simulate(m, rng)[:, self.detected]
+        md = m[:, self.detected]
+        chi_rep = calibrated_chi2(rep - md, md, self.ivar, self._mask.T, self._d2g)[0]
+        return chi_obs, chi_rep
+
     def simulate(self, model_flux, rng):
         """Replicated data sets drawn from the likelihood at each model, shape (n, n_bands).
 
