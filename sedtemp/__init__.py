@@ -19,6 +19,7 @@ from .errors import (
 from .fit import FitResult, fit_source, grid_posterior
 from .likelihood import Calibration
 from .models import ModifiedBlackbody, ThickModifiedBlackbody, TwoTemperatureModel
+from .compare import Comparison, compare, compare_draws, compare_table
 from .equilibrium import equilibrium_temperature, implied_U
 from .opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
 from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
@@ -50,6 +51,10 @@ __all__ = [
     "Blackbody",
     "Tabulated",
     "equilibrium_temperature",
+    "compare",
+    "compare_draws",
+    "compare_table",
+    "Comparison",
     "implied_U",
     "planck_nu",
     "Prior",

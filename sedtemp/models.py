@@ -36,7 +36,7 @@ import numpy as np
 
 from ._units import to_hz, to_kelvin, to_si
 from .errors import InputError
-from .opacity import PowerLawOpacity
+from .opacity import SaturatedPowerLawOpacity
 from .planck import _planck_nu_si
 from .priors import Prior, Uniform, UniformAmplitude
 
@@ -88,6 +88,10 @@ _BETA_RANGE = (0.0, 4.0)
 _THICK_TAU_RANGE = (-6.0, 3.0)
 
 
+#: Grain radius (um) of the default opacity's UV cap (a typical big grain; common practice).
+_DEFAULT_GRAIN_RADIUS_UM = 0.1
+
+
 def default_opacity(per="dust"):
     """The opacity used when a model is given ``opacity=None``.
 
@@ -101,8 +105,14 @@ def default_opacity(per="dust"):
 
     Returns
     -------
-    PowerLawOpacity
-        With ``beta = 2`` (models with a free beta override it).
+    SaturatedPowerLawOpacity
+        With ``beta = 2`` (models with a free beta override it), capped at
+        the geometric cross-section of 0.1 um grains of 3 g cm^-3. The cap
+        lies shortward of ~5 um, so it changes nothing in far-IR fits, but it
+        keeps the same opacity physical when the comparison stage uses it to
+        absorb starlight: a bare nu^beta law extrapolated to the UV
+        overestimates the absorbed power and so T_eq (36 K instead of ~18 K
+        in the U = 1 field for beta = 1.8).
 
     References
     ----------
@@ -110,7 +120,8 @@ def default_opacity(per="dust"):
     99, 924 (normalisation quoted from memory).
     """
     kappa = _BECKWITH_KAPPA_GAS * (_GAS_TO_DUST if per == "dust" else 1.0)
-    return PowerLawOpacity(kappa * u.cm**2 / u.g, _BECKWITH_NU0 * u.Hz, _DEFAULT_BETA, per=per)
+    return SaturatedPowerLawOpacity(kappa * u.cm**2 / u.g, _BECKWITH_NU0 * u.Hz, _DEFAULT_BETA,
+                                    grain_radius=_DEFAULT_GRAIN_RADIUS_UM * u.um, per=per)
 
 
 # ---------------------------------------------------------------- CMB physics

@@ -422,3 +422,22 @@ def test_model_name_errors():
         model_from_name("thinn")
     with pytest.raises(InputError, match=r"model 'thin': .*distanse.*; its options are \['opacity', 'amplitude'"):
         model_from_name("thin", distanse=3)
+
+
+def test_default_opacity_gives_diffuse_ism_temperature_in_the_isrf():
+    # Reference: big grains in the solar-neighbourhood field sit at ~17-20 K
+    # (Planck Collaboration 2014, A&A 571, A11: mean all-sky T ~ 19.7 K; from
+    # memory). The UV cap of the default opacity is what makes this true: the
+    # bare power law extrapolated to the UV gives ~36 K.
+    import astropy.units as u
+
+    from sedtemp.equilibrium import equilibrium_temperature
+    from sedtemp.models import default_opacity
+    from sedtemp.radiation import ISRF
+
+    t = equilibrium_temperature(ISRF(1.0), default_opacity(), beta=1.8).to_value(u.K)
+    assert 15.0 < t < 22.0
+    # far-IR values are the plain Beckwith et al. (1990) law: the cap is shortward of 5 um
+    kap = default_opacity()
+    nu = np.geomspace(3e11, 6e13, 50)
+    np.testing.assert_allclose(kap.kappa_si(nu, beta=1.8), 1.0 * (nu / 1e12) ** 1.8, rtol=1e-12)
