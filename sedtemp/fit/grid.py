@@ -46,8 +46,11 @@ _LOG_FLOOR = -80.0
 #: closely down to about a third of a cell per sd.
 _COARSE = 0.3
 #: A marginal sd below this many cell widths triggers a zoomed re-evaluation of
-#: that source (also keeps the in-cell jitter of the draws below ~1/12 of the variance).
-_REFINE = 1.0
+#: that source (the spline quantiles are good to ~0.3 cells; the margin is safety).
+_REFINE = 0.5
+#: In-cell jitter of the draws is scaled to at most this many posterior sd
+#: (uniform jitter of width w adds w^2/12 to the variance: <= 2 % here).
+_JITTER = 0.49
 #: Nodes per axis of a zoomed grid (window ~ +-5 sd: cells of ~0.4 sd, so the
 #: uniform in-cell jitter of the draws adds ~1 % to the variance).
 _ZOOM_NODES = 25
@@ -351,8 +354,15 @@ class GridPosterior:
         sd = np.sqrt(np.maximum(np.sum(p * xm**2, axis=1) - mean**2, 0.0))
         return out, sd
 
-    def _draw(self, post, a_hat, sd, n, rng):
-        """n weighted draws per source: (node index, T, beta, log10 amplitude)."""
+    def _draw(self, post, a_hat, sd, n, rng, sd_lnT, sd_b):
+        """n weighted draws per source: (node index, T, beta, log10 amplitude).
+
+        A draw picks a node by its mass and moves uniformly within the node's
+        cell, shrunk towards the node where the cell is wide compared with
+        the posterior: the node masses alone already have the right variance
+        (rectangle rule), and a full-cell jitter would add h^2/12. The shrink
+        factor min(1, _JITTER sd / h) caps that excess at 2 % of the variance.
+        """
         ns, nn = post.shape
         cum = np.cumsum(post, axis=1)
         cum = cum / cum[:, -1:] + np.arange(ns)[:, None]
@@ -363,9 +373,16 @@ class GridPosterior:
         it, ib = np.divmod(node, self.beta_nodes.size)
         jt, jb = uni[:, 1], uni[:, 2]
         lt0, lt1 = np.log(self.T_edges[it]), np.log(self.T_edges[it + 1])
-        T = np.exp(lt0 + jt * (lt1 - lt0))
-        beta = (self.beta_edges[ib] + jb * (self.beta_edges[ib + 1] - self.beta_edges[ib])
-                if self.has_beta else np.full((ns, n), np.nan))
+        lnode = np.log(self.T_nodes[it])
+        cT = np.minimum(1.0, _JITTER * sd_lnT / np.diff(np.log(self.T_nodes)).max())[:, None]
+        T = np.exp(lnode + cT * (lt0 + jt * (lt1 - lt0) - lnode))
+        if self.has_beta:
+            b0, b1 = self.beta_edges[ib], self.beta_edges[ib + 1]
+            cb = np.minimum(1.0, _JITTER * sd_b / np.diff(self.beta_nodes).max())[:, None]
+            bnode = self.beta_nodes[ib]
+            beta = bnode + cb * (b0 + jb * (b1 - b0) - bnode)
+        else:
+            beta = np.full((ns, n), np.nan)
         rows = np.arange(ns)[:, None]
         mu, s = a_hat[rows, node], sd[rows, node]
         lo, hi = ndtr((self._a_lo - mu) / s), ndtr((self._a_hi - mu) / s)
@@ -409,7 +426,7 @@ class GridPosterior:
         if self.has_beta:
             qb, sd_b = self._axis_quantiles(cube.sum(axis=1), self.beta_nodes, self._wb, False)
             cols.update({f"beta_{k}": v for k, v in qb.items()})
-        node, T, beta, lamp = self._draw(post, a_hat, sd, max(n_draws, n_ppp, 2), rng)
+        node, T, beta, lamp = self._draw(post, a_hat, sd, max(n_draws, n_ppp, 2), rng, sd_lnT, sd_b)
         if self.has_beta:
             # posterior correlation of T and beta (the degeneracy) from the node masses;
             # node sums of a smooth posterior converge fast (rectangle rule on a Gaussian)
