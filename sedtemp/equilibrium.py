@@ -55,7 +55,8 @@ DEFAULT_NU_GRID_HZ = np.geomspace(1e9, NU_LYMAN, 4001)
 _T_TABLE_K = np.geomspace(0.5, 5000.0, 461)
 _NU_EMIT_HZ = np.geomspace(1e7, 2e16, 2001)
 _BETA_STEP = 0.05  # node spacing of emission tables over a spread of beta
-_BETA_DIRECT_MAX = 256  # up to this many distinct betas, absorbed power is computed directly
+_BETA_DIRECT_MAX = 48  # up to this many distinct betas, absorbed power is computed directly
+_BETA_SPLINE_STEP = 0.02  # node spacing in beta of the absorbed-power spline beyond that
 _M_H = const.m_p.si.value + const.m_e.si.value
 _AMU = const.u.si.value
 _KAPPA_SI = u.m**2 / u.kg
@@ -82,24 +83,35 @@ def _beta_array(beta, opacity):
 
 
 # -------------------------------------------------------------- absorbed
-def _absorbed_component(field, opacity, b, nu, w):
-    """4 pi sum_nu w kappa(nu, b) J(nu) for the beta array ``b`` (any shape)."""
-    wj = 4 * np.pi * w * field.mean_intensity_si(nu)
+def _absorbed_parts(components, opacity, b, nu, w):
+    """4 pi sum_nu w kappa(nu, b) J_c(nu) per component, for the beta array ``b``.
+
+    The opacity matrix is built once and shared by all components. With many
+    distinct betas (posterior draws) ln P is smooth in beta, so it is
+    evaluated on nodes _BETA_SPLINE_STEP apart and interpolated with a cubic
+    spline (~1e-7 relative).
+    """
+    wj = np.stack([4 * np.pi * w * c.mean_intensity_si(nu) for c in components], axis=1)  # (n_nu, n_c)
     if b.ndim == 0:
-        return np.asarray(opacity.kappa_si(nu, b) @ wj)
+        return [np.asarray(v) for v in opacity.kappa_si(nu, b) @ wj]
     flat = b.ravel()
     uniq, inv = np.unique(flat, return_inverse=True)
     if uniq.size <= _BETA_DIRECT_MAX:
-        vals = opacity.kappa_si(nu[None, :], uniq[:, None]) @ wj
-        return vals[inv].reshape(b.shape)
-    # many distinct betas: ln P is smooth in beta; cubic spline through a fine node set
+        vals = opacity.kappa_si(nu[None, :], uniq[:, None]) @ wj  # (n_uniq, n_c)
+        return [vals[inv, k].reshape(b.shape) for k in range(wj.shape[1])]
     from scipy.interpolate import CubicSpline
 
-    nodes = np.linspace(uniq[0], uniq[-1], _BETA_DIRECT_MAX)
+    n_nodes = int(np.clip(np.ceil((uniq[-1] - uniq[0]) / _BETA_SPLINE_STEP) + 1, 8, 256))
+    nodes = np.linspace(uniq[0], uniq[-1], n_nodes)
     vals = opacity.kappa_si(nu[None, :], nodes[:, None]) @ wj
-    if np.any(vals <= 0):
-        return np.interp(flat, nodes, vals).reshape(b.shape)
-    return np.exp(CubicSpline(nodes, np.log(vals))(flat)).reshape(b.shape)
+    out = []
+    for k in range(wj.shape[1]):  # a few field components
+        v = vals[:, k]
+        if np.any(v <= 0):
+            out.append(np.interp(flat, nodes, v).reshape(b.shape))
+        else:
+            out.append(np.exp(CubicSpline(nodes, np.log(v))(flat)).reshape(b.shape))
+    return out
 
 
 def absorbed_power(field, opacity, *, beta=None, nu_grid=None, per_component=False):
@@ -134,7 +146,7 @@ def absorbed_power(field, opacity, *, beta=None, nu_grid=None, per_component=Fal
         raise InputError(f"field must be a sedtemp.radiation field, got {type(field).__name__}")
     nu, w = _grid(nu_grid)
     b = _beta_array(beta, opacity)
-    parts = [_absorbed_component(c, opacity, b, nu, w) for c in field.components]
+    parts = _absorbed_parts(field.components, opacity, b, nu, w)
     return np.stack(parts, axis=-1) if per_component else sum(parts)
 
 
@@ -198,6 +210,16 @@ def emitted_power(temperature, opacity, *, beta=None):
     return _emission_direct(t, opacity, b)
 
 
+def _lagrange_in_beta(b, lo, hi):
+    """Node index j and the three quadratic Lagrange weights for beta nodes _BETA_STEP apart."""
+    n = max(3, int(np.ceil((hi - lo) / _BETA_STEP)) + 1)
+    nodes = np.linspace(lo, hi, n)
+    step = nodes[1] - nodes[0]
+    j = np.clip(np.rint((b - lo) / step).astype(int) - 1, 0, n - 3)
+    x = (b - nodes[j]) / step  # in [0, 2]
+    return nodes, j, ((x - 1) * (x - 2) / 2, -x * (x - 2), x * (x - 1) / 2)
+
+
 def _invert_table(lnp, opacity, b0):
     """ln T for ln P from the table of scalar beta b0, power-law extrapolation beyond it."""
     tab = _table(opacity, b0)
@@ -252,13 +274,8 @@ def temperature_for_power(power_per_mass, opacity, *, beta=None):
     if hi - lo < 1e-12:
         lt = _invert_table(lnp, opacity, lo)
     else:
-        n = max(3, int(np.ceil((hi - lo) / _BETA_STEP)) + 1)
-        nodes = np.linspace(lo, hi, n)
-        step = nodes[1] - nodes[0]
         # quadratic (3-node Lagrange) interpolation in beta of ln T at fixed ln P
-        j = np.clip(np.rint((b - lo) / step).astype(int) - 1, 0, n - 3)
-        x = (b - nodes[j]) / step  # in [0, 2]
-        lag = ((x - 1) * (x - 2) / 2, -x * (x - 2), x * (x - 1) / 2)
+        nodes, j, lag = _lagrange_in_beta(b, lo, hi)
         lt = np.empty(p.shape)
         for k in np.unique(j):  # loop over beta nodes, not frequencies
             m = j == k

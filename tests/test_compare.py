@@ -251,10 +251,12 @@ def test_draws_agree_with_the_forward_module():
     assert comp.T_eq.to_value(u.K)[:50] == pytest.approx(ref, rel=1e-4)
     assert comp.U_implied[:50] == pytest.approx(implied_U(t[:50], OPACITY, beta=b[:50]), rel=1e-6)
     assert comp.field_scale == pytest.approx(comp.U_implied / 5.0, rel=1e-12)  # linear in the field
-    # emitted power over 600 draws comes from a cubic table in (ln T, beta): 1e-6 of direct
+    # emitted power over 600 draws comes from a cubic table in (ln T, beta), absorbed
+    # power from a spline in beta: each good to ~1e-7 of its own size, so the
+    # difference is compared within 1e-6 of the terms (it can cancel to far less).
     p_emit = emitted_power(t[:50], OPACITY, beta=b[:50])
     p_abs = absorbed_power(ISRF(5.0), OPACITY, beta=b[:50])
-    assert comp.extra_power_per_mass.to_value(u.W / u.kg)[:50] == pytest.approx(p_emit - p_abs, rel=1e-6, abs=1e-9)
+    assert comp.extra_power_per_mass.to_value(u.W / u.kg)[:50] == pytest.approx(p_emit - p_abs, abs=1e-6 * p_abs.max())
     # sign convention: extra power > 0 exactly when T_fit > T_eq
     assert comp.p_warmer == np.mean(comp.extra_power_per_mass.value > 0)
     assert comp.extra_luminosity.to_value(u.L_sun) == pytest.approx(

@@ -221,3 +221,20 @@ def test_input_errors():
         absorbed_power("isrf", PL2)
     with pytest.raises(InputError, match="material must be one of"):
         Grain(0.1, material="ice")
+
+
+def test_absorbed_power_for_many_betas_matches_direct_integration():
+    # Many distinct betas go through a cubic spline in beta (nodes 0.02 apart);
+    # reference: the same trapezoid integral done for each beta alone (exact
+    # within the module), agreement 1e-6 relative (spline error ~1e-7).
+    import astropy.units as u
+    from sedtemp.opacity import SaturatedPowerLawOpacity
+    from sedtemp.radiation import ISRF, Star
+
+    kap = SaturatedPowerLawOpacity(10 * u.cm**2 / u.g, 1 * u.THz, 1.8, grain_radius=0.1 * u.um)
+    field = ISRF(2.0) + Star(2e4 * u.K, luminosity=1e3 * u.L_sun, distance=0.5 * u.pc)
+    b = np.random.default_rng(8).uniform(0.5, 3.5, 400)
+    many = absorbed_power(field, kap, beta=b, per_component=True)
+    for i in (0, 17, 399):
+        one = absorbed_power(field, kap, beta=b[i], per_component=True)
+        np.testing.assert_allclose(many[i], one, rtol=1e-6)
