@@ -117,6 +117,10 @@ kind = "cmb"
 directory = "sedtemp-demo"
 keep_draws = true
 n_keep = 200
+# corner, SED and trace plots of the flagged sources in sedtemp-demo/sources; each is an
+# MCMC fit (emcee settings of [fit]), so the demo caps them
+source_plots = "flagged"
+max_source_plots = 12
 """
 
 

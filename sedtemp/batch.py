@@ -21,11 +21,21 @@ again with the same command reads the parts, skips the sources they hold and
 does the rest; the results table then holds every source exactly once.
 Because each source has its own seed, the resumed results are identical to
 an uninterrupted run.
+
+Figures, once the results are written: the catalogue plots
+(:func:`catalogue_plots`, ``[output] plots``) and, for the sources
+``[output] source_plots`` selects (:func:`select_plot_sources`), at most
+``max_source_plots`` of them, the corner, SED and trace plots in
+``<output>/sources``. Those need a chain, so each chosen source is refitted
+by MCMC with its own seed (:func:`sedtemp.pipeline.plot_source`), one task
+per source on the same executor. The run report says how many were made
+and whether the cap was reached.
 """
 
 from __future__ import annotations
 
 import concurrent.futures as cf
+import functools
 import json
 import logging
 import multiprocessing
@@ -33,7 +43,7 @@ import os
 import shutil
 import time
 from collections import Counter
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -43,14 +53,17 @@ from . import __version__
 from .catalog import MappedCatalog, write_table
 from .config import OUTPUT_FORMATS, Workflow
 from .errors import ConfigError
-from .pipeline import STATUS_FAILED, STATUS_OK, STATUS_SKIPPED, process_chunk
+from .pipeline import STATUS_FAILED, STATUS_OK, STATUS_SKIPPED, plot_source, process_chunk, t_eq_band
 
-__all__ = ["run_batch", "open_executor", "InlineExecutor", "write_report"]
+__all__ = ["run_batch", "open_executor", "InlineExecutor", "write_report", "check_optional_packages",
+           "catalogue_plots", "select_plot_sources", "SOURCES_DIR"]
 
 log = logging.getLogger(__name__)
 
 _PARTS = "parts"
 _STATE = "run-state.json"
+#: Sub-folder of the output directory that holds the per-source figures.
+SOURCES_DIR = "sources"
 #: Tasks kept in flight per worker: enough to keep workers busy, few enough that a
 #: million-source catalogue is not all pickled at once.
 _IN_FLIGHT_PER_WORKER = 3
@@ -91,6 +104,39 @@ def _import_optional(module, extra):
     except ImportError as err:
         raise ImportError(f"executor needs {module.split('.')[0]}; install it with "
                           f"pip install 'sedtemp[{extra}]'") from err
+
+
+def _require_h5py():
+    try:
+        import h5py
+    except ImportError as err:
+        raise ImportError("[output] keep_draws = true needs h5py, which is not installed; "
+                          "pip install 'sedtemp[hdf5]', or set keep_draws = false") from err
+    return h5py
+
+
+def check_optional_packages(wf: Workflow) -> None:
+    """Fail now, before any fitting, if the workflow needs an optional package that is missing.
+
+    Parameters
+    ----------
+    wf : Workflow
+
+    Raises
+    ------
+    ImportError
+        ``[output] keep_draws = true`` without h5py (extra ``sedtemp[hdf5]``),
+        ``executor = "dask"`` without Dask distributed (``sedtemp[dask]``) or
+        ``executor = "mpi"`` without mpi4py (``sedtemp[mpi]``); the message
+        names the extra to install.
+    """
+    if wf.output["keep_draws"]:
+        _require_h5py()
+    kind = wf.run["executor"]
+    if kind == "dask":
+        _import_optional("distributed", "dask")
+    elif kind == "mpi":
+        _import_optional("mpi4py.futures", "mpi")
 
 
 @contextmanager
@@ -159,8 +205,10 @@ def _prepare_dir(out: Path, wf: Workflow, mapped: MappedCatalog, restart: bool) 
     state = {"workflow_sha256": wf.digest, "catalog_sha256": _catalog_digest(mapped),
              "n_sources": len(mapped), "sedtemp_version": __version__}
     state_file = out / _STATE
-    if restart and parts.exists():
-        shutil.rmtree(parts)
+    if restart:  # the figures of the earlier run go too: none may be left over from it
+        for folder in (parts, out / SOURCES_DIR):
+            if folder.exists():
+                shutil.rmtree(folder)
     if state_file.exists() and parts.exists():
         old = json.loads(state_file.read_text())
         for key in ("workflow_sha256", "catalog_sha256"):
@@ -237,26 +285,46 @@ def _chunks(todo: np.ndarray, size: int):
     return [todo[i:i + size] for i in range(0, todo.size, size)]
 
 
-def _progress(total, initial, enabled):
+def _progress(total, initial, enabled, desc="sedtemp"):
     from tqdm.auto import tqdm
 
     return tqdm(total=total, initial=initial, unit="src", disable=not enabled, dynamic_ncols=True,
-                desc="sedtemp", smoothing=0.1)
+                desc=desc, smoothing=0.1)
+
+
+def _in_flight(ex, limit, items, task, on_done):
+    """Run every item on ``ex`` with at most ``limit`` tasks in flight, in order of submission.
+
+    ``task(item)`` returns ``(fn, *args)``, built only when the item is
+    submitted (so a large catalogue is never pickled all at once);
+    ``on_done(item, result)`` gets each result as it finishes.
+    """
+    pending = {}
+    queue = list(reversed(items))
+    while queue or pending:
+        while queue and len(pending) < limit:
+            item = queue.pop()
+            fn, *args = task(item)
+            pending[ex.submit(fn, *args)] = item
+        done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+        for fut in done:
+            on_done(pending.pop(fut), fut.result())
+
+
+def _limit(n_workers, n_items):
+    """Tasks in flight: a bounded number per worker; everything for an executor given by the caller."""
+    return max(1, n_items if n_workers is None else _IN_FLIGHT_PER_WORKER * n_workers)
 
 
 def _execute(ex, n_workers, wf, mapped, chunks, on_done, bar, n_keep):
     """Submit chunks with a bounded number in flight; hand each finished table to ``on_done``."""
-    pending = set()
-    queue = list(reversed(chunks))
-    limit = max(1, _IN_FLIGHT_PER_WORKER * n_workers)
-    while queue or pending:
-        while queue and len(pending) < limit:
-            pending.add(ex.submit(process_chunk, wf, mapped.take(queue.pop()), n_keep=n_keep))
-        done, pending = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-        for fut in done:
-            tab = fut.result()
-            on_done(tab)
-            bar.update(len(tab))
+    fn = functools.partial(process_chunk, n_keep=n_keep)
+
+    def done(_, tab):
+        on_done(tab)
+        bar.update(len(tab))
+
+    _in_flight(ex, _limit(n_workers, len(chunks)), chunks, lambda c: (fn, wf, mapped.take(c)), done)
 
 
 # ----------------------------------------------------------------- results
@@ -272,7 +340,8 @@ def _finalise(tabs: list[Table], wf: Workflow, mapped: MappedCatalog) -> Table:
     out = tab[[c for c in tab.colnames if not c.startswith("_")]]
     out.meta.clear()
     out.meta.update({"sedtemp_version": __version__, "workflow_sha256": wf.digest,
-                     "workflow": wf.source, "seed": wf.run["seed"], "id_column": mapped.id_column,
+                     "workflow": wf.source, "workflow_path": "" if wf.file is None else str(wf.file),
+                     "seed": wf.run["seed"], "id_column": mapped.id_column,
                      "band_names": list(mapped.band_names)})
     return out
 
@@ -286,10 +355,7 @@ def _write_draws(tab: Table, path: Path) -> Path | None:
     names = [c for c in tab.colnames if c.startswith("draws_")]
     if not names:
         return None
-    try:
-        import h5py
-    except ImportError as err:
-        raise ImportError("[output] keep_draws needs h5py; pip install 'sedtemp[hdf5]'") from err
+    h5py = _require_h5py()
     tmp = path.with_name(".tmp-" + path.name)
     with h5py.File(tmp, "w") as h5:
         h5.attrs["sedtemp_version"] = __version__
@@ -301,8 +367,170 @@ def _write_draws(tab: Table, path: Path) -> Path | None:
     return path
 
 
-def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int) -> dict:
-    """Counts per flag and status, failures with reasons, timing; JSON and text files.
+# ------------------------------------------------------------------- plots
+def catalogue_plots(results: Table, directory) -> tuple[list[Path], list[str]]:
+    """Population plot, and the comparison plot when the comparison columns are there.
+
+    Written as ``<directory>/population.{pdf,png}`` and
+    ``comparison.{pdf,png}``, from the sources with ``status = "ok"``. A
+    figure that cannot be drawn is reported, not raised: the results of a
+    finished run stay valid.
+
+    Parameters
+    ----------
+    results : Table
+        A results table (as :func:`run_batch` returns or writes it).
+    directory : str or Path
+
+    Returns
+    -------
+    (list of Path, list of str)
+        The stems of the figures written, and one message per figure that failed.
+    """
+    import warnings
+
+    try:
+        from . import plots
+    except ImportError as err:  # matplotlib or corner missing
+        return [], [f"plots: not available ({err})"]
+    out = Path(directory)
+    base = results[[c for c in results.colnames if not c.startswith("draws_")]]
+    if "id" not in base.colnames:
+        base = base.copy()
+        base["id"] = base[base.colnames[0]]
+    ok = base[np.asarray(base["status"]) == STATUS_OK] if "status" in base.colnames else base
+    jobs = [("population", plots.population_plot)]
+    if "T_eq_median" in ok.colnames:
+        jobs.insert(0, ("comparison", plots.comparison_plot))
+    made, failed = [], []
+    for name, fn in jobs:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # plotting hints must not stop a finished run
+            try:
+                fn(ok, save_to=out / name)
+                made.append(out / name)
+            except Exception as err:  # noqa: BLE001 - a plot failure is reported, results stay
+                log.warning("%s plot failed: %s", name, err)
+                failed.append(f"{name}: {type(err).__name__}: {err}")
+    return made, failed
+
+
+def select_plot_sources(results: Table, choice: str) -> np.ndarray:
+    """Rows of ``results`` that get per-source plots under ``[output] source_plots = choice``.
+
+    Parameters
+    ----------
+    results : Table
+    choice : {"none", "flagged", "all"}
+        "all": every source with ``status = "ok"``; "flagged": those whose
+        comparison ``flag`` is not ``consistent`` or, without a comparison
+        (no ``flag`` column), those with any fit flag (``flags`` not empty).
+
+    Returns
+    -------
+    ndarray of int
+        Row positions, in catalogue order.
+
+    Raises
+    ------
+    ConfigError
+        Unknown ``choice``.
+    """
+    from .config import SOURCE_PLOT_CHOICES
+
+    if choice not in SOURCE_PLOT_CHOICES:
+        raise ConfigError(f"[output] source_plots must be one of {list(SOURCE_PLOT_CHOICES)}, got {choice!r}")
+    ok = np.asarray(results["status"]) == STATUS_OK
+    if choice == "none":
+        ok[:] = False
+    elif choice == "flagged" and "flag" in results.colnames:
+        flag = np.asarray(results["flag"], dtype=str)
+        ok &= (flag != "") & (flag != "consistent")
+    elif choice == "flagged" and "flags" in results.colnames:
+        ok &= np.asarray(results["flags"], dtype=str) != ""
+    elif choice == "flagged":  # neither comparison nor fit flags: nothing is flagged
+        ok[:] = False
+    return np.flatnonzero(ok)
+
+
+def _plot_task(wf, sub, directory, t_eq):
+    """One source's figures (a worker task); never raises: (paths, "" or the failure)."""
+    try:
+        return [str(p) for p in plot_source(wf, sub, 0, directory, T_eq=t_eq)], ""
+    except Exception as err:  # noqa: BLE001 - one failed figure must not lose the others
+        return [], f"{type(err).__name__}: {err}"
+
+
+def _source_plots(get_executor, wf, mapped, result, out, progress) -> dict:
+    """Per-source figures of the sources ``[output] source_plots`` selects, up to the cap."""
+    choice, cap = wf.output["source_plots"], wf.output["max_source_plots"]
+    chosen = select_plot_sources(result, choice)
+    todo = chosen[:cap]
+    info = {"choice": choice, "selected": int(chosen.size), "made": 0, "cap": cap,
+            "cap_reached": bool(chosen.size > cap), "directory": SOURCES_DIR, "failed": []}
+    if not todo.size:
+        return info
+    directory = out / SOURCES_DIR
+    ex, n = get_executor()
+    keys = mapped.keys
+
+    def task(i):
+        return _plot_task, wf, mapped.take([i]), directory, t_eq_band(result[int(i)])
+
+    with _progress(int(todo.size), 0, progress, desc="plots") as bar:
+
+        def done(i, res):
+            _, error = res
+            if error:
+                log.warning("plots of source %r failed: %s", str(keys[i]), error)
+                info["failed"].append([str(keys[i]), error])
+            else:
+                info["made"] += 1
+            bar.update(1)
+
+        _in_flight(ex, _limit(n, int(todo.size)), list(todo), task, done)
+    return info
+
+
+def _plot_lines(plots: dict) -> list[str]:
+    lines = []
+    cat = plots.get("catalogue")
+    if cat is not None:
+        lines.append("catalogue plots: " + (", ".join(cat["made"]) + " (.pdf, .png)" if cat["made"] else "none"))
+        lines.extend(f"  plot failed: {m}" for m in cat["failed"])
+    src = plots.get("sources")
+    if src is not None:
+        if src["choice"] == "none":
+            lines.append('source plots: none ([output] source_plots = "none")')
+        else:
+            lines.append(f"source plots ({src['choice']}): {src['made']} of {src['selected']} "
+                         f"{src['choice']} source(s) plotted in {src['directory']}/")
+        if src["cap_reached"]:
+            lines.append(f"  cap reached: [output] max_source_plots = {src['cap']}; "
+                         f"{src['selected'] - src['cap']} {src['choice']} source(s) not plotted "
+                         "(raise the cap, or use `sedtemp plot RESULTS --source ID`)")
+        lines.extend(f"  plot failed: {k}: {r}" for k, r in src["failed"])
+    if "seconds" in plots:
+        lines.append(f"plot time: {plots['seconds']:.1f} s")
+    return lines
+
+
+def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int, plots: dict | None = None) -> dict:
+    """Counts per flag and status, failures with reasons, timing, plots made; JSON and text files.
+
+    Parameters
+    ----------
+    tab : Table
+        The results.
+    path : Path
+        File stem: ``<path>.txt`` and ``<path>.json`` are written.
+    seconds : float, keyword-only
+        Time of the fitting (this session).
+    n_resumed : int, keyword-only
+        Sources read back from checkpoints.
+    plots : dict, optional, keyword-only
+        ``{"catalogue": {"made": [...], "failed": [...]}, "sources": {...},
+        "seconds": float}`` as :func:`run_batch` collects it.
 
     Returns
     -------
@@ -326,6 +554,9 @@ def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int) -> d
         lines.append("flags: " + ", ".join(f"{k or '(none)'}: {v}" for k, v in sorted(flags.items())))
     lines.append(f"time: {seconds:.1f} s for {n_new} source(s) this session"
                  + (f" ({n_resumed} resumed from checkpoints)" if n_resumed else ""))
+    if plots:
+        rep["plots"] = plots
+        lines.extend(_plot_lines(plots))
     for title, items in (("failed", failed), ("skipped", skipped)):
         if items:
             lines.append(f"{title}:")
@@ -345,6 +576,14 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
               progress=False, restart=False, keep_draws=False) -> Table:
     """Run fit -> predict -> compare over a mapped catalogue, in chunks, on an executor.
 
+    With an ``output_dir`` the run also writes, after the results: the
+    draws file (``[output] keep_draws``), the catalogue plots (``[output]
+    plots``), the per-source plots (``[output] source_plots``, at most
+    ``max_source_plots`` sources, each refitted by MCMC on the same
+    executor: :func:`sedtemp.pipeline.plot_source`) and the run report,
+    which says how many per-source plots were made and whether the cap
+    was reached.
+
     Parameters
     ----------
     mapped : MappedCatalog
@@ -352,11 +591,12 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
     executor : concurrent.futures.Executor, optional, keyword-only
         Use this executor (not shut down here); default: the one ``[run]`` names.
     output_dir : str or Path, optional, keyword-only
-        Checkpoint folder and results destination; None keeps everything in memory.
+        Checkpoint folder and results destination; None keeps everything in
+        memory (and makes no plots).
     progress : bool, keyword-only
         tqdm progress bar (sources done, rate, time left) on stderr.
     restart : bool, keyword-only
-        Discard the checkpoints of an earlier run in ``output_dir``.
+        Discard the checkpoints and per-source plots of an earlier run in ``output_dir``.
     keep_draws : bool, keyword-only
         Keep ``[output] n_keep`` posterior draws per source in ``draws_*``
         columns of the returned table even if ``[output] keep_draws`` is off.
@@ -371,9 +611,14 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
     ------
     ConfigError
         ``output_dir`` holds checkpoints of a different workflow or catalogue.
+    ImportError
+        Before any fitting: ``[output] keep_draws`` with an ``output_dir``
+        but without h5py, or an executor whose package is missing.
     """
     t0 = time.perf_counter()
     out = None if output_dir is None else Path(output_dir)
+    if out is not None and wf.output["keep_draws"]:
+        _require_h5py()  # now, not after hours of fitting
     tabs: list[Table] = []
     done_rows: set[int] = set()
     parts = None
@@ -390,23 +635,45 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
             _write_part(parts, tab)
         tabs.append(tab)
 
-    with _progress(len(mapped), n_resumed, progress) as bar:
-        if todo.size:
-            chunks = _chunks(todo, wf.run["chunk_size"])
-            n_keep = wf.output["n_keep"] if (keep_draws or wf.output["keep_draws"]) else 0
-            if executor is not None:
-                _execute(executor, max(1, len(chunks)), wf, mapped, chunks, on_done, bar, n_keep)
-            else:
-                with open_executor(wf.run) as (ex, n):
-                    _execute(ex, n, wf, mapped, chunks, on_done, bar, n_keep)
-    if not tabs:
-        return Table()
-    result = _finalise(tabs, wf, mapped)
-    if out is not None:
-        fmt = wf.output["format"]
-        name = wf.output["name"]
-        write_table(_results_table(result), out / (name + OUTPUT_FORMATS[fmt][1]), format=fmt)
-        if wf.output["keep_draws"]:
-            _write_draws(result, out / f"{name}-draws.h5")
-        write_report(result, out / f"{name}-report", seconds=time.perf_counter() - t0, n_resumed=n_resumed)
+    with ExitStack() as stack:
+        pool = []
+
+        def get_executor():
+            """(executor, workers) opened at first use; workers None for the caller's executor."""
+            if not pool:
+                pool.append((executor, None) if executor is not None
+                            else stack.enter_context(open_executor(wf.run)))
+            return pool[0]
+
+        with _progress(len(mapped), n_resumed, progress) as bar:
+            if todo.size:
+                n_keep = wf.output["n_keep"] if (keep_draws or wf.output["keep_draws"]) else 0
+                _execute(*get_executor(), wf, mapped, _chunks(todo, wf.run["chunk_size"]), on_done, bar, n_keep)
+        if not tabs:
+            return Table()
+        result = _finalise(tabs, wf, mapped)
+        if out is None:
+            return result
+        seconds = time.perf_counter() - t0
+        _write_outputs(result, wf, out)
+        plots = _plots(get_executor, wf, mapped, result, out, progress)
+    write_report(result, out / f"{wf.output['name']}-report", seconds=seconds, n_resumed=n_resumed, plots=plots)
     return result
+
+
+def _write_outputs(result, wf, out):
+    fmt, name = wf.output["format"], wf.output["name"]
+    write_table(_results_table(result), out / (name + OUTPUT_FORMATS[fmt][1]), format=fmt)
+    if wf.output["keep_draws"]:
+        _write_draws(result, out / f"{name}-draws.h5")
+
+
+def _plots(get_executor, wf, mapped, result, out, progress) -> dict:
+    t0 = time.perf_counter()
+    plots = {}
+    if wf.output["plots"]:
+        made, failed = catalogue_plots(result, out)
+        plots["catalogue"] = {"made": [p.name for p in made], "failed": failed}
+    plots["sources"] = _source_plots(get_executor, wf, mapped, result, out, progress)
+    plots["seconds"] = round(time.perf_counter() - t0, 3)
+    return plots

@@ -5,7 +5,24 @@ Subcommands::
     sedtemp run WORKFLOW [--output DIR] [--restart]   fit -> predict -> compare a catalogue
     sedtemp check WORKFLOW                              validate workflow and catalogue, no fitting
     sedtemp demo [--output DIR] [--sources N]           the bundled invented scenario, end to end
-    sedtemp plot RESULTS [--source ID] [--output DIR]   plots from a results table
+    sedtemp plot RESULTS [--source ID] [--output DIR]   plots from a finished run
+
+``run`` (and ``demo``) write into the output folder the results table, the
+run report, the draws file (``[output] keep_draws``), the catalogue plots
+``population`` and ``comparison`` (``[output] plots``) and, in ``sources/``,
+the corner, SED and trace plots of the sources ``[output] source_plots``
+selects ("flagged" by default; at most ``max_source_plots``), each as PDF
+and PNG.
+
+``plot RESULTS`` redraws the catalogue plots from a results file (into its
+folder, or ``--output DIR``). ``plot RESULTS --source ID`` makes the three
+plots of one source in ``DIR/sources/``: it refits the source by MCMC with
+the run's workflow, whose path and sha256 the results file records; it
+refuses if that workflow has changed since the run.
+
+``check`` validates the workflow and the catalogue and checks that the
+optional packages the workflow needs are installed (h5py for
+``keep_draws``, Dask or mpi4py for those executors).
 
 Global options: ``--quiet`` (no progress bar or summary), ``--debug`` (show
 the traceback of an error). Errors print one line to stderr and the command
@@ -49,9 +66,11 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--output", type=Path, default=Path(_DEMO_OUTPUT), help=f"folder (default {_DEMO_OUTPUT})")
     d.add_argument("--sources", type=int, default=None, help="use only the first N sources")
     pl = sub.add_parser("plot", parents=[common], help="plots from a results table")
-    pl.add_argument("results", type=Path)
-    pl.add_argument("--source", help="id of one source (needs the draws file)")
-    pl.add_argument("--output", type=Path, help="folder for the figures (default: next to RESULTS)")
+    pl.add_argument("results", type=Path, help="results file of a finished run")
+    pl.add_argument("--source", metavar="ID", help="corner, SED and trace plots of this source "
+                    "(refitted by MCMC with the run's workflow) instead of the catalogue plots")
+    pl.add_argument("--output", type=Path, metavar="DIR",
+                    help="folder for the figures (default: the folder of RESULTS)")
     return p
 
 
@@ -70,9 +89,12 @@ def _load(path):
 
 
 def _cmd_check(args) -> int:
+    from .batch import check_optional_packages
+
     t0 = time.perf_counter()
     wf, tab, map_catalog = _load(args.workflow)
     wf.bandset()
+    check_optional_packages(wf)
     mapped = map_catalog(tab, wf)
     n_skip = int((mapped.skip_reason != "").sum())
     _say(args, f"{args.workflow}: workflow valid; catalogue {wf.catalog['path']!r}: {len(mapped)} "
@@ -85,17 +107,17 @@ def _cmd_check(args) -> int:
 
 
 def _run_workflow(args, wf, tab, map_catalog, out, *, restart=False):
-    from .batch import run_batch
+    from .batch import check_optional_packages, run_batch
 
+    check_optional_packages(wf)  # a missing extra fails here, before any fitting
     mapped = map_catalog(tab, wf)
     res = run_batch(mapped, wf, output_dir=out, progress=not args.quiet, restart=restart)
-    if wf.output["plots"]:
-        _plots(res, out, args, wf)
     _summary(args, res, out, wf)
     return res
 
 
 def _summary(args, res, out, wf):
+    import json
     from collections import Counter
 
     from .config import OUTPUT_FORMATS
@@ -107,7 +129,22 @@ def _summary(args, res, out, wf):
         _say(args, "flags: " + ", ".join(f"{k}: {v}" for k, v in sorted(flags.items())))
     name = wf.output["name"]
     _say(args, f"results: {out / (name + OUTPUT_FORMATS[wf.output['format']][1])}")
-    _say(args, f"report:  {out / (name + '-report.txt')}")
+    report = out / (name + "-report.txt")
+    _say(args, f"report:  {report}")
+    rep = report.with_suffix(".json")
+    plots = json.loads(rep.read_text(encoding="utf-8")).get("plots", {}) if rep.exists() else {}
+    cat = plots.get("catalogue")
+    if cat is not None:
+        _say(args, "plots:   " + (", ".join(str(out / f"{n}.png") for n in cat["made"]) or "none"))
+        for msg in cat["failed"]:
+            print(f"sedtemp: plot failed: {msg}", file=sys.stderr)
+    src = plots.get("sources")
+    if src is not None and src["choice"] != "none":
+        cap = f" (cap max_source_plots = {src['cap']} reached)" if src["cap_reached"] else ""
+        _say(args, f"source plots: {src['made']} of {src['selected']} {src['choice']} source(s) in "
+                   f"{out / src['directory']}{cap}")
+        for key, msg in src["failed"]:
+            print(f"sedtemp: plots of source {key!r} failed: {msg}", file=sys.stderr)
 
 
 def _cmd_run(args) -> int:
@@ -115,6 +152,14 @@ def _cmd_run(args) -> int:
     out = args.output if args.output is not None else wf.output_dir
     _run_workflow(args, wf, tab, map_catalog, Path(out), restart=args.restart)
     return 0
+
+
+def _h5py_missing() -> bool:
+    try:
+        import h5py  # noqa: F401
+    except ImportError:
+        return True
+    return False
 
 
 def _cmd_demo(args) -> int:
@@ -131,7 +176,11 @@ def _cmd_demo(args) -> int:
                 raise SedtempError(f"--sources must be >= 1, got {args.sources}")
             tab = tab[: args.sources]
         out = args.output.resolve()
-        wf = replace(wf, output={**wf.output, "directory": str(out)})
+        output = {**wf.output, "directory": str(out)}
+        if output["keep_draws"] and _h5py_missing():  # h5py is the optional extra sedtemp[hdf5]
+            output["keep_draws"] = False
+            _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not written")
+        wf = replace(wf, output=output)
         _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {out}")
         res = _run_workflow(args, wf, tab, map_catalog, out)
         truth = read_catalog(wf.path("demo_truth.ecsv"))
@@ -150,84 +199,91 @@ def _truth_score(res, truth, idc):
     return f"flags equal to the true class for {int(np.sum(ok))} of {len(ok)} fitted sources"
 
 
-def _plots(res, out, args, wf=None):
-    try:
-        from . import plots
-    except ImportError:
-        _say(args, "plots: not available (sedtemp.plots could not be imported)")
-        return []
-    import warnings
+def _cmd_plot(args) -> int:
+    from .batch import SOURCES_DIR, catalogue_plots
 
-    out = Path(out)
-    made = []
-    base = res[[c for c in res.colnames if not c.startswith("draws_")]]
-    if "id" not in base.colnames:
-        base = base.copy()
-        base["id"] = base[base.colnames[0]]
-    ok = base[base["status"] == "ok"]
-    jobs = [("population", plots.population_plot)]
-    if "T_eq_median" in ok.colnames:
-        jobs.insert(0, ("comparison", plots.comparison_plot))
-    for name, fn in jobs:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # plotting hints must not stop a finished run
-            try:
-                fig = fn(ok, save_to=out / name)
-                made.append(out / name)
-                del fig
-            except Exception as err:  # noqa: BLE001 - a plot failure is reported, results stay
-                print(f"sedtemp: {name} plot failed: {err}", file=sys.stderr)
+    res = _read_results(args.results)
+    out = Path(args.output if args.output is not None else args.results.parent)
+    if args.source is not None:
+        paths = _plot_source(args, res, out / SOURCES_DIR)
+        _say(args, "plots:   " + ", ".join(str(p) for p in paths if p.suffix == ".png"))
+        return 0
+    made, failed = catalogue_plots(res, out)
+    for msg in failed:
+        print(f"sedtemp plot: {msg}", file=sys.stderr)
     if made:
         _say(args, "plots:   " + ", ".join(f"{p}.png" for p in made))
-    return made
+    return 0 if made and not failed else 1
 
 
-def _cmd_plot(args) -> int:
+def _read_results(path):
+    from astropy.io.registry import IORegistryError
     from astropy.table import Table
 
     from .errors import InputError
 
-    if not args.results.exists():
-        raise InputError(f"results file {str(args.results)!r} does not exist")
+    if not path.exists():
+        raise InputError(f"results file {str(path)!r} does not exist")
     try:
-        from . import plots  # noqa: F401
-    except ImportError as err:
-        raise SedtempError("plots are not available: sedtemp.plots could not be imported") from err
-    res = Table.read(args.results)
-    out = args.output if args.output is not None else args.results.parent
-    if args.source is None:
-        made = _plots(res, out, args)
-        return 0 if made else 1
-    return _plot_source(args, res, out)
+        return Table.read(path, format="ascii.ecsv" if path.suffix.lower() == ".ecsv" else None)
+    except (OSError, ValueError, TypeError, IORegistryError) as err:
+        raise InputError(f"cannot read results file {path.name!r}: {err}") from err
 
 
-def _plot_source(args, res, out):
+def _meta(res, key):
+    """A results-file metadata entry; FITS headers give the keys back in upper case."""
+    for k, v in res.meta.items():
+        if str(k).lower() == key:
+            return v
+    return None
+
+
+def _run_workflow_of(args, res):
+    """The workflow recorded in a results file, unchanged since the run."""
+    from .config import load_workflow
+    from .errors import ConfigError, InputError
+
+    path, digest = _meta(res, "workflow_path"), _meta(res, "workflow_sha256")
+    if not path or not digest:
+        raise InputError(f"{args.results.name} does not record the path and sha256 of its workflow "
+                         "(results metadata 'workflow_path', 'workflow_sha256'); per-source plots "
+                         "refit the source with that workflow: run it again with this sedtemp version")
+    if not Path(path).exists():
+        raise ConfigError(f"the workflow of {args.results.name}, {path!r}, no longer exists; "
+                          "restore it there to refit its sources")
+    wf = load_workflow(path)
+    if wf.digest != digest:
+        raise ConfigError(f"the workflow {path!r} has changed since {args.results.name} was made "
+                          f"(sha256 {digest[:12]}... recorded, {wf.digest[:12]}... now); restore it, "
+                          "or run it again, before plotting its sources")
+    return wf
+
+
+def _plot_source(args, res, directory):
+    """Refit one source of a finished run with its recorded workflow; write its three figures."""
     import numpy as np
 
-    from . import plots
+    from .catalog import map_catalog, read_catalog
     from .errors import InputError
+    from .pipeline import plot_source, t_eq_band
 
-    idc = res.colnames[0]
-    keys = np.array([str(v) for v in res[idc]])
+    idc = _meta(res, "id_column") or res.colnames[0]
+    keys = [str(v) for v in res[idc]]
     if args.source not in keys:
-        raise InputError(f"source {args.source!r} is not in {args.results.name} (column {idc!r})")
-    draws_file = args.results.with_name(args.results.stem + "-draws.h5")
-    if not draws_file.exists():
-        raise InputError(f"per-source plots need the posterior draws {draws_file.name}; "
-                         "set keep_draws = true under [output] and run again")
-    import h5py
-
-    with h5py.File(draws_file, "r") as h5:
-        ids = np.array([v.decode() for v in h5["id"][:]])
-        i = int(np.flatnonzero(ids == args.source)[0])
-        draws = {k: h5[k][i] for k in h5 if k != "id"}
-    row = res[int(np.flatnonzero(keys == args.source)[0])]
-    fig = plots.population_plot(res[res["status"] == "ok"] if "status" in res.colnames else res,
-                                draws={args.source: (draws["T"], draws.get("beta"))},
-                                save_to=Path(out) / f"source-{args.source}")
-    del fig, row
-    _say(args, f"plot: {Path(out) / f'source-{args.source}'}.png")
-    return 0
+        raise InputError(f"source {args.source!r} is not in {args.results.name} (column {idc!r}); "
+                         f"ids look like {keys[0]!r}" if keys else f"{args.results.name} has no sources")
+    row = res[keys.index(args.source)]
+    if "status" in res.colnames and row["status"] != "ok":
+        raise InputError(f"source {args.source!r} has status {str(row['status'])!r} in {args.results.name} "
+                         f"({row['reason']}); there is no posterior to plot")
+    wf = _run_workflow_of(args, res)
+    cat = read_catalog(wf.path(wf.catalog["path"]), format=wf.catalog["format"])
+    in_cat = np.flatnonzero(np.array([str(v) for v in cat[wf.catalog["id_column"]]]) == args.source)
+    if not in_cat.size:
+        raise InputError(f"source {args.source!r} is no longer in the catalogue {wf.catalog['path']!r} "
+                         "of the workflow")
+    mapped = map_catalog(cat[in_cat[:1]], wf)  # map only this row: the rest is not needed
+    return plot_source(wf, mapped, 0, directory, T_eq=t_eq_band(row))
 
 
 _COMMANDS = {"run": _cmd_run, "check": _cmd_check, "demo": _cmd_demo, "plot": _cmd_plot}

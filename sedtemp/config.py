@@ -73,8 +73,14 @@ named here.
 ``[output]``
     ``directory`` (default "sedtemp-results"), ``name`` (default "results"),
     ``format`` ("ecsv" | "fits" | "votable" | "csv"), ``keep_draws`` (bool:
-    posterior draws in HDF5), ``n_keep`` (draws kept per source, 200),
-    ``plots`` (bool, default true).
+    posterior draws in HDF5, needs the extra ``sedtemp[hdf5]``), ``n_keep``
+    (draws kept per source, 200), ``plots`` (bool, default true: the
+    catalogue plots, population and comparison), ``source_plots`` ("none" |
+    "flagged" | "all", default "flagged": corner, SED and trace plots per
+    source in ``<directory>/sources``; "flagged" = a comparison flag other
+    than ``consistent``, or any fit flag when there is no comparison),
+    ``max_source_plots`` (int >= 0, default 20: at most this many sources
+    get per-source plots, in catalogue order; each one costs an MCMC fit).
 """
 
 from __future__ import annotations
@@ -101,12 +107,15 @@ __all__ = [
     "MODEL_GROUP",
     "FIELD_GROUP",
     "OUTPUT_FORMATS",
+    "SOURCE_PLOT_CHOICES",
 ]
 
 #: Entry-point group under which other packages register SED model classes.
 MODEL_GROUP = "sedtemp.models"
 #: Entry-point group under which other packages register radiation-field factories.
 FIELD_GROUP = "sedtemp.fields"
+#: ``[output] source_plots`` values: which sources get corner, SED and trace plots.
+SOURCE_PLOT_CHOICES = ("none", "flagged", "all")
 #: Output format keyword -> (astropy writer, file suffix).
 OUTPUT_FORMATS = {
     "ecsv": ("ascii.ecsv", ".ecsv"),
@@ -137,7 +146,7 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
     "compare": {"enabled": (bool, True), "thresholds": (dict, {})},
     "output": {"directory": (str, "sedtemp-results"), "name": (str, "results"),
                "format": (str, "ecsv"), "keep_draws": (bool, False), "n_keep": (int, 200),
-               "plots": (bool, True)},
+               "plots": (bool, True), "source_plots": (str, "flagged"), "max_source_plots": (int, 20)},
 }
 _BAND_KEYS = {"flux": (str, _REQ), "error": (str, _REQ), "limit": (str, None),
               "unit": (str, None), "calibration": (str, None), "wavelength": ((str, *_NUM), None),
@@ -147,7 +156,8 @@ _PRIOR_KEYS = {"kind": (str, _REQ), "low": (_NUM, None), "high": (_NUM, None),
                "mean": (_NUM, None), "sigma": (_NUM, None)}
 _CHOICES = {("run", "executor"): ("process", "dask", "mpi", "serial"),
             ("fit", "method"): ("grid", "mcmc"),
-            ("output", "format"): tuple(OUTPUT_FORMATS)}
+            ("output", "format"): tuple(OUTPUT_FORMATS),
+            ("output", "source_plots"): SOURCE_PLOT_CHOICES}
 _TOP = set(_SCHEMA) | {"bands", "calibration", "priors", "workflow"}
 
 
@@ -308,6 +318,10 @@ class Workflow:
         File name (or "<workflow>") for messages.
     digest : str
         SHA-256 of the canonical workflow content (recorded in results).
+    file : Path or None
+        Absolute path of the workflow file (:func:`load_workflow`), None for
+        a workflow built from a mapping; recorded in results so that
+        ``sedtemp plot --source`` can refit a source.
     """
 
     run: dict
@@ -323,6 +337,7 @@ class Workflow:
     base_dir: Path = Path(".")
     source: str = "<workflow>"
     digest: str = ""
+    file: Path | None = None
     raw: dict = field(default_factory=dict, repr=False)
 
     # ---------------------------------------------------------------- paths
@@ -547,6 +562,9 @@ def parse_workflow(data, *, base_dir=".", source="<workflow>", text=None) -> Wor
     for sec, key in (("run", "chunk_size"), ("fit", "n_draws"), ("output", "n_keep")):
         if sections[sec][key] < 1:
             raise where.error(sec, key, f"must be >= 1, got {sections[sec][key]}")
+    if sections["output"]["max_source_plots"] < 0:
+        raise where.error("output", "max_source_plots",
+                          f"must be >= 0 (0: no per-source plots), got {sections['output']['max_source_plots']}")
     return Workflow(bands=bands, calibration=calibration, priors=priors, base_dir=Path(base_dir),
                     source=source, digest=_digest(data), raw=copy.deepcopy(data), **sections)
 
@@ -569,4 +587,6 @@ def load_workflow(path) -> Workflow:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as err:
         raise ConfigError(f"{path.name}: not valid TOML: {err}") from err
-    return parse_workflow(data, base_dir=path.resolve().parent, source=path.name, text=text)
+    wf = parse_workflow(data, base_dir=path.resolve().parent, source=path.name, text=text)
+    wf.file = path.resolve()
+    return wf

@@ -15,6 +15,13 @@ the input order)::
     pred = pipeline.predict(my_table, wf, fits=fits)
     comp = pipeline.compare(my_table, wf, fits=fits)
 
+and, for the figures of one source (which need its chain, not just its
+row), refit it by MCMC exactly as the batch would::
+
+    mapped = map_catalog(my_table, wf)
+    res = pipeline.refit_source(wf, mapped, 17)   # FitResult of the 18th source
+    pipeline.plot_source(wf, mapped, 17, "figs", T_eq=pipeline.t_eq_band(results[17]))
+
 Every source gets its own random stream, ``SeedSequence([seed, key])`` with
 ``key`` a stable 64-bit hash of its id, so a source's result does not depend
 on which other sources share its chunk or worker.
@@ -24,6 +31,7 @@ from __future__ import annotations
 
 import hashlib
 import logging
+import re
 import warnings
 
 import astropy.units as u
@@ -35,7 +43,8 @@ from .config import Workflow, lookup_field
 from .errors import InputError, SedtempWarning
 
 __all__ = ["run", "fit", "predict", "compare", "process_chunk", "source_seed", "build_field",
-           "fit_columns", "STATUS_OK", "STATUS_SKIPPED", "STATUS_FAILED"]
+           "fit_columns", "refit_source", "plot_source", "source_plot_stem", "t_eq_band",
+           "STATUS_OK", "STATUS_SKIPPED", "STATUS_FAILED"]
 
 log = logging.getLogger(__name__)
 
@@ -126,10 +135,18 @@ def _fit_grid(wf, mapped, i, rng):
     return row, draws, grid.model
 
 
-def _fit_mcmc(wf, mapped, i, seq):
+def _mcmc_result(wf, mapped, i, seq, *, rescaled=True):
+    """emcee fit of source i with the workflow's model, prior and calibration: (FitResult, model).
+
+    ``rescaled``: with a per-source distance the batch fits fluxes rescaled to
+    the 1 kpc grid distance (see _D_REF_M); False fits at the source's own
+    distance, so the result's fluxes and SED are the source's own (plots).
+    """
     from .fit import fit_source
 
     d_grid, factor = _scaling(wf, mapped, i)
+    if not rescaled and factor != 1.0:
+        d_grid, factor = float(mapped.distance_m[i]), 1.0
     model = _model(wf, mapped.redshift[i], d_grid)
     used = ~mapped.missing[i]
     flux = np.where(used, mapped.flux[i] * factor, np.nan) * (u.W / u.m**2 / u.Hz)
@@ -139,6 +156,12 @@ def _fit_mcmc(wf, mapped, i, seq):
                      calibration=wf.calibration_groups(), upper_limits=mapped.limit_only[i],
                      seed=seq, n_walkers=f["n_walkers"], ess_target=f["ess_target"],
                      max_steps=f["max_steps"], source_id=mapped.keys[i])
+    return res, model
+
+
+def _fit_mcmc(wf, mapped, i, seq):
+    res, model = _mcmc_result(wf, mapped, i, seq)
+    f = wf.fit
     row = res.summary()
     row["method"] = "mcmc"
     rng = np.random.default_rng(seq.spawn(1)[0])
@@ -224,7 +247,7 @@ def _predict_mapped(wf, mapped, fit_rows, status, reason):
 
 
 # -------------------------------------------------------------------- compare
-def _compare_one(wf, mapped, i, draws):
+def _compare_one(wf, mapped, i, draws, fit_flags=None):
     from .compare import compare_draws
 
     fld = build_field(mapped, i)
@@ -239,22 +262,142 @@ def _compare_one(wf, mapped, i, draws):
     comp = compare_draws(np.asarray(draws["T"]) * u.K, np.asarray(beta), fld, wf.opacity(),
                          mass_draws=mass, field_uncertainty=f["uncertainty"] or None,
                          projected=f["projected"], thresholds=wf.compare["thresholds"] or None,
-                         seed=int(seq_cmp.generate_state(1)[0]))
+                         fit_flags=fit_flags, seed=int(seq_cmp.generate_state(1)[0]))
     return comp.columns()
 
 
-def _compare_mapped(wf, mapped, draws, status, reason):
+def _compare_mapped(wf, mapped, draws, status, reason, fit_flags=None):
+    """Compare every fitted source; ``fit_flags`` (per source) let prior-limited fits be 'unconstrained'."""
     out = []
     for i in range(len(mapped)):
         row = {}
         if status[i] == STATUS_OK and draws[i] is not None:
             try:
-                row = _compare_one(wf, mapped, i, draws[i])
+                row = _compare_one(wf, mapped, i, draws[i], None if fit_flags is None else fit_flags[i])
             except Exception as err:  # noqa: BLE001 - recorded per source
                 err.add_note(f"while comparing source {mapped.keys[i]!r}")
                 status[i], reason[i] = STATUS_FAILED, f"compare: {type(err).__name__}: {err}"
         out.append(row)
     return out
+
+
+# ------------------------------------------------------- one source, in full
+def refit_source(workflow: Workflow, mapped: MappedCatalog, index: int):
+    """The full MCMC posterior of one catalogue source, as the batch run would sample it.
+
+    Runs :func:`sedtemp.fit.fit_source` with the workflow's model, priors,
+    calibration groups and ``[fit]`` emcee settings, seeded with the
+    source's own fit seed (``source_seed(seed, key).spawn(2)[0]``). For a
+    source the batch fitted by MCMC (``method = "mcmc"``) the chain is the
+    batch's, bit for bit; for a grid source it is an MCMC sample of the same
+    posterior. Use it for the per-source figures, which need the chain, the
+    model and the photometry that a results row does not hold.
+
+    Parameters
+    ----------
+    workflow : Workflow
+    mapped : MappedCatalog
+        The catalogue, mapped with this workflow.
+    index : int
+        Position of the source in ``mapped``.
+
+    Returns
+    -------
+    FitResult
+
+    Raises
+    ------
+    InputError
+        ``index`` out of range, or the workflow skips the source (its reason).
+
+    Notes
+    -----
+    With a per-source ``distance_column`` the batch samples fluxes rescaled
+    to 1 kpc (the same posterior in T, beta and mass: S ~ M / D^2); the refit
+    uses the source's own distance, so its fluxes are the catalogue's and its
+    chain equals the batch's only up to rounding.
+    """
+    if isinstance(index, bool) or not isinstance(index, (int, np.integer)) or not 0 <= index < len(mapped):
+        raise InputError(f"refit_source: index must be an integer in [0, {len(mapped)}), got {index!r}")
+    key = str(mapped.keys[index])
+    if mapped.skip_reason[index]:
+        raise InputError(f"source {key!r} is skipped by this workflow ({mapped.skip_reason[index]}); "
+                         "there is no fit to redo")
+    seq_fit, _ = source_seed(workflow.run["seed"], key).spawn(2)
+    with warnings.catch_warnings():
+        # as in the batch: every sedtemp warning of the fit is also one of its flags
+        warnings.simplefilter("ignore", SedtempWarning)
+        res, _ = _mcmc_result(workflow, mapped, int(index), seq_fit, rescaled=False)
+    return res
+
+
+#: Characters kept in a figure file name made from a source id (others become "_").
+_SAFE_NAME = re.compile(r"[^A-Za-z0-9._+-]")
+
+
+def source_plot_stem(key: str) -> str:
+    """File-name stem of a source's figures: its id with characters other than ``A-Za-z0-9._+-`` as ``_``."""
+    return _SAFE_NAME.sub("_", str(key)) or "_"
+
+
+def t_eq_band(row):
+    """The predicted T_eq to shade on a corner plot, from a results row, in K; None if there is none.
+
+    The 16-84 % interval ``(T_eq_p16, T_eq_p84)`` of the comparison stage
+    when the row has it; else the single prediction ``T_eq`` of the predict
+    stage, as three equal values (drawn as a line, no band).
+    """
+    names = row.colnames if hasattr(row, "colnames") else list(row.keys())
+
+    def value(name):
+        return float(u.Quantity(row[name], u.K).value) if name in names else np.nan
+
+    lo, hi = value("T_eq_p16"), value("T_eq_p84")
+    if np.isfinite(lo) and np.isfinite(hi):
+        return np.array([lo, hi])
+    t = value("T_eq")
+    return np.full(3, t) if np.isfinite(t) else None
+
+
+def plot_source(workflow: Workflow, mapped: MappedCatalog, index: int, directory, *, T_eq=None) -> list:
+    """Refit one source (:func:`refit_source`) and write its corner, SED and trace plots.
+
+    Parameters
+    ----------
+    workflow : Workflow
+    mapped : MappedCatalog
+    index : int
+        Position of the source in ``mapped``.
+    directory : str or Path
+        Folder of the figures (created): ``<stem>_corner``, ``<stem>_sed``
+        and ``<stem>_trace``, each as ``.pdf`` and ``.png``, with ``<stem>``
+        from :func:`source_plot_stem`.
+    T_eq : array_like, optional, keyword-only
+        Predicted equilibrium temperature (K) shaded on the corner plot, as
+        :func:`sedtemp.plots.corner_plot` takes it (e.g. :func:`t_eq_band`).
+
+    Returns
+    -------
+    list of Path
+        The files written.
+
+    Raises
+    ------
+    InputError
+        From :func:`refit_source` and the plotting functions.
+    """
+    from pathlib import Path
+
+    from . import plots
+
+    res = refit_source(workflow, mapped, index)
+    stem = Path(directory) / source_plot_stem(mapped.keys[index])
+    figures = {"corner": (plots.corner_plot, {"T_eq": T_eq}), "sed": (plots.sed_plot, {}),
+               "trace": (plots.trace_plot, {})}
+    written = []
+    for kind, (make, options) in figures.items():
+        written += plots.save_figure(make(res, **options), stem.with_name(f"{stem.name}_{kind}"))
+    return written
 
 
 # ------------------------------------------------------------------ assembly
@@ -358,7 +501,8 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
     if use_predict:
         parts.append(_predict_mapped(wf, mapped, rows, status, reason))
     if use_compare:
-        parts.append(_compare_mapped(wf, mapped, draws, status, reason))
+        parts.append(_compare_mapped(wf, mapped, draws, status, reason,
+                                     [r.get("flags", "") for r in rows]))
     return _to_table(mapped, parts, status, reason, draws=draws, n_keep=n_keep)
 
 
@@ -431,7 +575,9 @@ def compare(table, workflow: Workflow, *, fits) -> Table:
     reason = np.asarray(fits["reason"], dtype=object) if "reason" in fits.colnames \
         else np.full(len(mapped), "", dtype=object)
     status, reason = status.copy(), reason.copy()
-    return _public(_to_table(mapped, [_compare_mapped(workflow, mapped, draws, status, reason)], status, reason))
+    flags = [str(v) for v in fits["flags"]] if "flags" in fits.colnames else None
+    return _public(_to_table(mapped, [_compare_mapped(workflow, mapped, draws, status, reason, flags)],
+                             status, reason))
 
 
 def run(table, workflow: Workflow, *, executor=None, output_dir=None, progress=False) -> Table:

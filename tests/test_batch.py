@@ -1,6 +1,7 @@
 """Chunked runs: per-source seeds, independence of chunking and workers, checkpoints, failures."""
 
 import hashlib
+import sys
 
 import astropy.units as u
 import numpy as np
@@ -181,3 +182,69 @@ def test_draws_written_to_hdf5(tmp_path, catalog):
         np.testing.assert_array_equal(h5["T"][:], np.asarray(res["draws_T"]))
         assert h5.attrs["workflow_sha256"] == wf.digest
     assert "draws_T" not in Table.read(tmp_path / "results.ecsv").colnames
+
+
+# ------------------------------------------------------------ per-source plots
+def test_select_plot_sources():
+    from sedtemp.batch import select_plot_sources
+
+    tab = Table({"name": ["a", "b", "c", "d", "e"], "status": ["ok", "ok", "ok", "failed", "ok"],
+                 "flags": ["", "T_at_prior_high", "", "", ""],
+                 "flag": ["consistent", "consistent", "shielded", "extra_heating", "unconstrained"]})
+    assert select_plot_sources(tab, "flagged").tolist() == [2, 4]  # comparison flag, not "consistent"; ok only
+    assert select_plot_sources(tab, "all").tolist() == [0, 1, 2, 4]
+    assert select_plot_sources(tab, "none").tolist() == []
+    del tab["flag"]  # no comparison stage: any fit flag counts
+    assert select_plot_sources(tab, "flagged").tolist() == [1]
+    del tab["flags"]
+    assert select_plot_sources(tab, "flagged").tolist() == []
+    with pytest.raises(ConfigError, match=r"\[output\] source_plots must be one of \['none', 'flagged', 'all'\], "
+                                          r"got 'most'"):
+        select_plot_sources(tab, "most")
+
+
+def test_source_plots_of_flagged_sources_with_cap(tmp_path, catalog):
+    """T prior capped at 20 K: sources fitted warmer pile up at the edge (fit flag); cap 2 of them."""
+    import json
+
+    raw = make_workflow().raw  # a new workflow (new digest: the cached grids are keyed on it)
+    raw["priors"]["T"]["high"] = 20.0
+    raw["fit"].update(n_walkers=16, ess_target=40, max_steps=2000)
+    raw["output"].update(source_plots="flagged", max_source_plots=2)
+    wf = parse_workflow(raw)
+    res = run_batch(map_catalog(catalog[:6], wf), wf, output_dir=tmp_path)
+    flagged = [str(k) for k, f in zip(res["name"], res["flags"]) if f]
+    assert len(flagged) > 2  # otherwise the cap is not exercised
+    files = sorted(p.name for p in (tmp_path / "sources").iterdir())
+    assert files == sorted(f"{k}_{kind}.{ext}" for k in flagged[:2] for kind in ("corner", "sed", "trace")
+                           for ext in ("pdf", "png"))  # the first two flagged, in catalogue order
+    assert all((tmp_path / "sources" / f).stat().st_size > 0 for f in files)
+    rep = json.loads((tmp_path / "results-report.json").read_text())["plots"]["sources"]
+    assert rep == {"choice": "flagged", "selected": len(flagged), "made": 2, "cap": 2, "cap_reached": True,
+                   "directory": "sources", "failed": []}
+    text = (tmp_path / "results-report.txt").read_text()
+    assert f"source plots (flagged): 2 of {len(flagged)} flagged source(s) plotted in sources/" in text
+    assert (f"cap reached: [output] max_source_plots = 2; {len(flagged) - 2} flagged source(s) not plotted "
+            "(raise the cap, or use `sedtemp plot RESULTS --source ID`)") in text
+    assert "catalogue plots: population (.pdf, .png)" in text  # no comparison columns: population only
+    # --restart discards the earlier run's figures with its checkpoints
+    wf.output.update(source_plots="none", plots=False)
+    run_batch(map_catalog(catalog[:6], wf), wf, output_dir=tmp_path, restart=True)
+    assert not (tmp_path / "sources").exists()
+    assert 'source plots: none ([output] source_plots = "none")' in (tmp_path / "results-report.txt").read_text()
+
+
+def test_keep_draws_without_h5py_fails_before_fitting(tmp_path, catalog, monkeypatch):
+    from sedtemp.batch import check_optional_packages
+
+    monkeypatch.setitem(sys.modules, "h5py", None)  # `import h5py` now raises ImportError
+    wf = make_workflow()
+    wf.output["keep_draws"] = True
+    msg = r"\[output\] keep_draws = true needs h5py, which is not installed; pip install 'sedtemp\[hdf5\]'"
+    with pytest.raises(ImportError, match=msg):
+        check_optional_packages(wf)
+    with pytest.raises(ImportError, match=msg):
+        run_batch(map_catalog(catalog[:2], wf), wf, output_dir=tmp_path / "out")
+    assert not (tmp_path / "out").exists()  # refused at the start: nothing fitted or written
+    wf.output["keep_draws"] = False
+    check_optional_packages(wf)  # serial executor, no draws: nothing optional needed

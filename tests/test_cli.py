@@ -1,5 +1,6 @@
 """The sedtemp command, in-process; python -m sedtemp; resume after SIGKILL in a subprocess."""
 
+import json
 import os
 import signal
 import subprocess
@@ -35,7 +36,7 @@ def _catalog(n, seed=5):
     return t
 
 
-def _workflow_text(extra_fit="", executor="serial", chunk=4):
+def _workflow_text(extra_fit="", executor="serial", chunk=4, extra_output='source_plots = "none"', extra=""):
     bands = "\n".join(f'[bands.b{w}]\nflux = "F{w}"\nerror = "E{w}"\n'
                       f'tophat = {{ center = "{w} um", width = 0.3 }}\n' for w in WAVE)
     return f"""
@@ -61,8 +62,10 @@ kind = "uniform"
 low = 5.0
 high = 60.0
 
+{extra}
 [output]
 directory = "out"
+{extra_output}
 """
 
 
@@ -170,3 +173,96 @@ def test_resume_after_sigkill(tmp_path):
         else:
             assert resumed[c].tolist() == ref[c].tolist(), c
     assert resumed["method"].tolist() == ["grid"] * 9 + ["mcmc"] * 3
+
+
+# ------------------------------------------------------------ per-source plots
+FIELD = '[[field.components]]\nkind = "isrf"\nU = 1.0\n'
+MCMC = "n_walkers = 16\ness_target = 40\nmax_steps = 2000"
+
+
+@pytest.fixture(scope="module")
+def finished(tmp_path_factory):
+    """A finished run (no per-source plots) of 6 sources in a field: the results file and workflow."""
+    tmp = tmp_path_factory.mktemp("finished")
+    _catalog(6).write(tmp / "cat.ecsv")
+    wf = tmp / "wf.toml"
+    wf.write_text(_workflow_text(MCMC, extra=FIELD))
+    assert main(["run", str(wf), "--quiet"]) == 0
+    return tmp / "out" / "results.ecsv", wf
+
+
+def test_plot_source_refits_with_recorded_workflow(finished, tmp_path, monkeypatch, capsys):
+    from sedtemp import plots
+
+    results, wf = finished
+    res = Table.read(results)
+    assert res.meta["workflow_path"] == str(wf.resolve())
+    seen = []
+    real = plots.corner_plot
+
+    def recording(result, **kw):
+        seen.append((result, kw["T_eq"]))
+        return real(result, **kw)
+
+    monkeypatch.setattr(plots, "corner_plot", recording)
+    assert main(["plot", str(results), "--source", "S003", "--output", str(tmp_path)]) == 0
+    names = sorted(p.name for p in (tmp_path / "sources").iterdir())
+    assert names == sorted(f"S003_{k}.{e}" for k in ("corner", "sed", "trace") for e in ("pdf", "png"))
+    assert str(tmp_path / "sources" / "S003_trace.png") in capsys.readouterr().out
+    (result, t_eq), = seen
+    row = res[3]
+    # the predicted T_eq of the row is shaded: the comparison's 68 % interval, else the prediction
+    expect = ([row["T_eq_p16"], row["T_eq_p84"]] if "T_eq_p16" in res.colnames else [row["T_eq"]] * 3)
+    np.testing.assert_array_equal(t_eq, expect)
+    # the refit is an MCMC sample of the posterior the grid row summarises: medians agree within
+    # 4 Monte Carlo errors (sd / sqrt(ESS)) plus the grid's node spacing in T (40 log nodes over 5-60 K)
+    sd = np.std(result.samples["T"])
+    grid_step = row["T_median"] * np.log(60 / 5) / 39
+    assert abs(np.median(result.samples["T"]) - row["T_median"]) < 4 * sd / np.sqrt(result.ess["T"]) + grid_step
+
+
+def test_plot_source_errors(finished, tmp_path, capsys):
+    results, wf = finished
+    assert main(["plot", str(results), "--source", "S999"]) == 1
+    assert ("sedtemp plot: error: source 'S999' is not in results.ecsv (column 'name'); ids look like 'S000'"
+            in capsys.readouterr().err)
+    res = Table.read(results)
+    failed = res.copy()
+    failed["status"], failed["reason"] = failed["status"].astype("U8"), failed["reason"].astype("U40")
+    failed["status"][2], failed["reason"][2] = "failed", "fit: FloatingPointError: invented"
+    failed.write(tmp_path / "failed.ecsv")
+    assert main(["plot", str(tmp_path / "failed.ecsv"), "--source", "S002"]) == 1
+    assert ("source 'S002' has status 'failed' in failed.ecsv (fit: FloatingPointError: invented); there is no "
+            "posterior to plot" in capsys.readouterr().err)
+    bare = res.copy()
+    bare.meta = {}
+    bare.write(tmp_path / "bare.ecsv")
+    assert main(["plot", str(tmp_path / "bare.ecsv"), "--source", "S001"]) == 1
+    assert ("bare.ecsv does not record the path and sha256 of its workflow (results metadata 'workflow_path', "
+            "'workflow_sha256')" in capsys.readouterr().err)
+    changed = tmp_path / "changed.toml"
+    changed.write_text(wf.read_text().replace("seed = 3", "seed = 4"))
+    res.meta["workflow_path"] = str(changed)
+    res.write(tmp_path / "changed.ecsv")
+    assert main(["plot", str(tmp_path / "changed.ecsv"), "--source", "S001"]) == 1
+    err = capsys.readouterr().err
+    assert f"the workflow '{changed}' has changed since changed.ecsv was made (sha256 " in err
+    assert "restore it, or run it again, before plotting its sources" in err
+    res.meta["workflow_path"] = str(tmp_path / "gone.toml")
+    res.write(tmp_path / "gone.ecsv")
+    assert main(["plot", str(tmp_path / "gone.ecsv"), "--source", "S001"]) == 1
+    assert f"the workflow of gone.ecsv, '{tmp_path / 'gone.toml'}', no longer exists" in capsys.readouterr().err
+    assert not (tmp_path / "sources").exists()
+
+
+def test_keep_draws_without_h5py_refused_at_check_and_run(case, monkeypatch, capsys):
+    tmp, wf = case
+    wf.write_text(wf.read_text().replace('directory = "out"', 'directory = "out"\nkeep_draws = true'))
+    monkeypatch.setitem(sys.modules, "h5py", None)  # `import h5py` now raises ImportError
+    msg = ("error: [output] keep_draws = true needs h5py, which is not installed; pip install 'sedtemp[hdf5]', "
+           "or set keep_draws = false")
+    assert main(["check", str(wf)]) == 1
+    assert msg in capsys.readouterr().err
+    assert main(["run", str(wf), "--quiet"]) == 1
+    assert msg in capsys.readouterr().err
+    assert not (tmp / "out").exists()  # refused before any fitting

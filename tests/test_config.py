@@ -228,3 +228,25 @@ def test_bundled_template_workflow_is_valid():
     wf = load_workflow(path)
     assert wf.run["executor"] == "process" and [c["kind"] for c in wf.field["components"]] == ["isrf", "star", "cmb"]
     assert wf.build_prior()["T"].high == 100.0
+    assert (wf.output["source_plots"], wf.output["max_source_plots"]) == ("flagged", 20)  # documented defaults
+
+
+def test_output_plot_keys_defaults_and_file(tmp_path):
+    path = _write(tmp_path, BASE)
+    wf = load_workflow(path)
+    assert wf.output["plots"] is True
+    assert wf.output["source_plots"] == "flagged" and wf.output["max_source_plots"] == 20
+    assert wf.file == path.resolve()  # recorded in results for `sedtemp plot --source`
+    assert parse_workflow({"catalog": {"path": "c", "id_column": "i"},
+                           "bands": {"b": {"flux": "F", "error": "E", "wavelength": 250}}}).file is None
+
+
+def test_output_plot_keys_checked(tmp_path):
+    text = BASE + '\n[output]\nsource_plots = "some"\n'
+    line = text.splitlines().index('source_plots = "some"') + 1
+    with pytest.raises(ConfigError, match=rf"line {line}: \[output\] 'source_plots': must be one of "
+                                          r"\['none', 'flagged', 'all'\], got 'some'"):
+        load_workflow(_write(tmp_path, text))
+    with pytest.raises(ConfigError, match=r"\[output\] 'max_source_plots': must be >= 0 \(0: no per-source "
+                                          r"plots\), got -1"):
+        load_workflow(_write(tmp_path, BASE + "\n[output]\nmax_source_plots = -1\n"))

@@ -1,6 +1,8 @@
 """Python stage API (fit, predict, compare, run), the bundled demo and its generator."""
 
 import importlib.util
+import json
+import sys
 from importlib import resources
 from pathlib import Path
 
@@ -73,6 +75,34 @@ def test_mcmc_source_equals_fit_source_with_its_seed():
                         n_walkers=16, ess_target=60, max_steps=20000, upper_limits=m.limit_only[1])
     assert res["T_median"][1] == direct.summary()["T_median"]  # bit-identical chain
     assert res["T_ess"][1] == direct.summary()["T_ess"]
+    # refit_source (the per-source plots' fit) is that same fit, with the source's own seed
+    again = pipeline.refit_source(wf, m, 1)
+    np.testing.assert_array_equal(again.chain, direct.chain)
+    assert again.summary()["T_median"] == res["T_median"][1]
+
+
+def test_refit_source_errors():
+    from sedtemp.errors import InputError
+
+    t = _catalog(3)
+    for w in WAVE[1:]:
+        t[f"F{w}"][2], t[f"E{w}"][2] = np.nan, np.nan
+    wf = _workflow()
+    m = map_catalog(t, wf)
+    with pytest.raises(InputError, match=r"refit_source: index must be an integer in \[0, 3\), got 3"):
+        pipeline.refit_source(wf, m, 3)
+    with pytest.raises(InputError, match=r"source 'S002' is skipped by this workflow \(too_few_bands: "
+                                         r"1 usable band\(s\) \['b70'\], need 3\); there is no fit to redo"):
+        pipeline.refit_source(wf, m, 2)
+
+
+def test_t_eq_band_and_plot_stem():
+    both = Table({"T_eq": [20.0] * u.K, "T_eq_p16": [18.0] * u.K, "T_eq_p84": [23.0] * u.K})
+    np.testing.assert_array_equal(pipeline.t_eq_band(both[0]), [18.0, 23.0])  # the 68 % interval
+    np.testing.assert_array_equal(pipeline.t_eq_band({"T_eq": 0.02 * u.kK}), [20.0, 20.0, 20.0])  # a line
+    assert pipeline.t_eq_band({"T_eq": np.nan, "T_median": 15.0}) is None
+    assert pipeline.t_eq_band({"T_median": 15.0}) is None
+    assert pipeline.source_plot_stem("G12.3+0.1 / core #2") == "G12.3+0.1___core__2"
 
 
 def test_per_source_distance_rescaling_is_exact():
@@ -203,10 +233,11 @@ def test_bundled_demo_equals_generator_output(tmp_path):
         assert (demo / name).read_text(encoding="utf-8") == (tmp_path / name).read_text(encoding="utf-8"), name
 
 
-def test_demo_subset_end_to_end(tmp_path):
+def test_demo_subset_end_to_end(tmp_path, monkeypatch):
     pytest.importorskip("sedtemp.compare")
     from sedtemp.cli import main
 
+    _patch_demo(monkeypatch, output={"max_source_plots": 3})  # the demo's own cap (12) costs ~30 s here
     assert main(["demo", "--output", str(tmp_path), "--sources", "40", "--quiet"]) == 0
     res = Table.read(tmp_path / "results.ecsv")
     truth = Table.read(_demo_dir() / "demo_truth.ecsv")[:40]
@@ -222,3 +253,42 @@ def test_demo_subset_end_to_end(tmp_path):
         0.5 * (np.asarray(res["T_p84"][cons]) - np.asarray(res["T_p16"][cons])))
     assert np.mean(np.abs(z) < 2) >= 0.8  # ~95 % expected for calibrated 68 % intervals
     assert (tmp_path / "results-report.txt").exists() and (tmp_path / "results-draws.h5").exists()
+    # the demo leaves the catalogue plots and the plots of its flagged sources (up to the cap)
+    for name in ("population", "comparison"):
+        assert (tmp_path / f"{name}.pdf").stat().st_size > 0 and (tmp_path / f"{name}.png").stat().st_size > 0
+    flagged = [str(k) for k, f, s in zip(res["src"], res["flag"], res["status"]) if s == "ok" and f not in ("", "consistent")]
+    assert len(flagged) > 3  # the cap is reached
+    assert sorted(p.name for p in (tmp_path / "sources").iterdir()) == sorted(
+        f"{k}_{kind}.{ext}" for k in flagged[:3] for kind in ("corner", "sed", "trace") for ext in ("pdf", "png"))
+    src = json.loads((tmp_path / "results-report.json").read_text())["plots"]["sources"]
+    assert (src["made"], src["selected"], src["cap_reached"]) == (3, len(flagged), True)
+
+
+def _patch_demo(monkeypatch, **sections):
+    """Load the demo workflow with some settings changed (test speed); its file and sha256 stay."""
+    import sedtemp.config as config
+
+    real = config.load_workflow
+
+    def load(path):
+        wf = real(path)
+        for name, values in sections.items():
+            getattr(wf, name).update(values)
+        return wf
+
+    monkeypatch.setattr(config, "load_workflow", load)
+
+
+def test_demo_without_h5py(tmp_path, monkeypatch, capsys):
+    from sedtemp.cli import main
+
+    monkeypatch.setitem(sys.modules, "h5py", None)
+    _patch_demo(monkeypatch, run={"executor": "serial"}, output={"max_source_plots": 0})
+    assert main(["demo", "--output", str(tmp_path), "--sources", "6"]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not "
+                          "written\n")
+    assert (tmp_path / "results.ecsv").exists() and not (tmp_path / "results-draws.h5").exists()
+    assert (tmp_path / "population.png").exists()
+    src = json.loads((tmp_path / "results-report.json").read_text())["plots"]["sources"]
+    assert src["made"] == 0 and src["cap_reached"] == (src["selected"] > 0)  # cap 0: none made
