@@ -836,7 +836,9 @@ def trace_plot(result: FitResult, *, fig: FigureBase | None = None,
 def _trace_row(fig, cell_t, cell_a, steps, x, acf, result, name, burn, last):
     ax = fig.add_subplot(cell_t)
     segs = np.stack([np.broadcast_to(steps[:, None], x.shape), x], axis=-1).transpose(1, 0, 2)
-    ax.add_collection(LineCollection(segs, colors="k", linewidths=0.3, alpha=0.25, gid="walkers"))
+    # rasterized: tens of walkers x thousands of steps as vectors make a slow, heavy PDF
+    ax.add_collection(LineCollection(segs, colors="k", linewidths=0.3, alpha=0.25, gid="walkers",
+                                     rasterized=True))
     ax.axvspan(0, burn, color=_OKABE_ITO["orange"], alpha=0.25, lw=0, gid="burn_in",
                label="burn-in (discarded)")
     ax.set_xlim(0, steps[-1])
