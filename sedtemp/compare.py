@@ -67,10 +67,14 @@ _W_PER_KG = u.W / u.kg
 _EMIT_DLNT = 0.05
 _EMIT_DBETA = 0.1
 _EMIT_DIRECT_MAX = 512  # up to this many draws, emitted power is integrated directly
-#: Fit trust flags (sedtemp.fit.summary) meaning the data do not bound T or beta:
-#: the posterior's position is set by the prior, so no flag can rest on it.
+#: Fit trust flags (sedtemp.fit.summary) meaning the data do not bound T, or T is
+#: cut by a prior edge (directly, or through the T-beta degeneracy when beta
+#: piles on its edge): the posterior's position is then set by the prior.
+#: 'beta_prior_dominated' alone is not here: a broad beta posterior is carried
+#: through (T_eq is computed with each draw's beta), and cold cores with only
+#: long-wavelength bands typically have a well-bounded T but a broad beta.
 UNTRUSTED_FIT_FLAGS = ("T_at_prior_low", "T_at_prior_high", "T_prior_dominated",
-                       "beta_at_prior_low", "beta_at_prior_high", "beta_prior_dominated")
+                       "beta_at_prior_low", "beta_at_prior_high")
 
 
 # ------------------------------------------------------------------ thresholds

@@ -354,3 +354,17 @@ def test_more_error_messages():
     with pytest.raises(InputError, match=r"component index 2 is out of range for a field of 2"):
         compare_draws([18.0, 19.0], 1.8, FIELD, OPACITY, field_uncertainty={2: ScaleUncertainty(2)})
     assert Thresholds.from_any({"ratio_high": 1.2}).ratio_high == 1.2
+
+
+def test_broad_beta_alone_does_not_make_a_cold_core_unconstrained():
+    # A cold core seen only at long wavelengths: T bounded (11 +- 1 K), beta broad
+    # (the fit flags beta_prior_dominated). T_eq in the U = 1 field is ~18 K for
+    # any beta in [1, 3] (forward module), so the core is shielded; a prior flag
+    # on T itself would make it unconstrained.
+    rng = np.random.default_rng(12)
+    t = rng.normal(11.0, 1.0, 2000) * u.K
+    b = rng.uniform(1.0, 3.0, 2000)
+    comp = compare_draws(t, b, ISRF(1.0), OPACITY, fit_flags="beta_prior_dominated", seed=1)
+    assert comp.flag == "shielded"
+    comp_t = compare_draws(t, b, ISRF(1.0), OPACITY, fit_flags="T_at_prior_low", seed=1)
+    assert comp_t.flag == "unconstrained"
