@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from conftest import TRUTH, simulate
-from sedtemp.errors import ConvergenceWarning, InputError, PriorEdgeWarning
+from sedtemp.errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning, SedtempWarning
 from sedtemp.fit import GridPosterior, fit_source, grid_posterior
 from sedtemp.priors import Uniform
 
@@ -133,9 +133,10 @@ def test_optimum_start_for_models_without_grid(source, bands, model):
 
 
 def test_prior_edge_is_flagged(source, bands, model):
+    # truth 20 K, T prior cut at 19 K: the posterior piles on the edge (fit still good)
     f, e = source
     with pytest.warns(PriorEdgeWarning, match="posterior of T piles up against its prior edge"):
-        r = fit_source(f, e, bands, model=model, prior={"T": Uniform(5, 17)}, seed=1, ess_target=300)
+        r = fit_source(f, e, bands, model=model, prior={"T": Uniform(5, 19.0)}, seed=1, ess_target=300)
     assert "T_at_prior_high" in r.flags
 
 
@@ -244,3 +245,27 @@ def test_grid_coverage_at_high_snr_uses_zoomed_grids(bands, model):
         inside95 = np.mean((g[f"{name}_p2_5"] < theta[:, j + 1]) & (theta[:, j + 1] < g[f"{name}_p97_5"]))
         assert inside68 == pytest.approx(0.68, abs=3 * np.sqrt(0.68 * 0.32 / n))
         assert inside95 == pytest.approx(0.95, abs=3 * np.sqrt(0.95 * 0.05 / n))
+
+
+def test_a_model_that_does_not_fit_is_flagged_poor_fit(source, bands, model):
+    # One band 60 % too bright at S/N 20 (a 12-sigma outlier): chi^2 ~ 100 on 3 dof,
+    # so the posterior predictive p-value is ~0 (exact chi^2 tail < 1e-20).
+    f, e = source
+    bad = f.copy()
+    bad[1] *= 1.6
+    g = grid_posterior(bad[None], e[None], bands, model=model, seed=1)
+    assert "poor_fit" in g["flags"][0].split(",") and g["ppp"][0] < 0.01
+    with pytest.warns(SedtempWarning, match="the model does not describe the data"):
+        r = fit_source(bad, e, bands, model=model, seed=1, ess_target=200)
+    assert "poor_fit" in r.flags
+    good = grid_posterior(f[None], e[None], bands, model=model, seed=1)
+    assert "poor_fit" not in good["flags"][0]
+
+
+def test_zoom_at_a_prior_edge_stays_inside_the_prior(source, bands, model):
+    # A narrow posterior against the upper T bound is zoomed up to the bound exactly
+    # (regression: exp(log(x)) rounding once put the zoomed grid 1 ulp outside).
+    f, e = source
+    with pytest.warns(GridWarning, match="piled against the grid/prior edge"):
+        g = grid_posterior(f[None], e[None], bands, model=model, prior={"T": Uniform(5, 19.6)}, seed=1)
+    assert "T_at_prior_high" in g["flags"][0] and g["T_p97_5"][0] <= 19.6

@@ -30,7 +30,7 @@ from ..errors import GridWarning, InputError
 from ..likelihood import Calibration, calibrated_chi2
 from ..priors import UniformAmplitude
 from ._data import prepare, resolve_prior
-from .summary import QUANTILES, trust_flags
+from .summary import POOR_FIT_PPP, QUANTILES, trust_flags
 
 __all__ = ["GridPosterior", "grid_posterior"]
 
@@ -230,9 +230,10 @@ class GridPosterior:
         n = _ZOOM_NODES if n_nodes is None else int(n_nodes)
         child = object.__new__(GridPosterior)
         child.__dict__.update(self.__dict__)
-        child.T_nodes = np.geomspace(*T_range, n)
+        # clipped to the parent's span: exp(log(x)) can exceed x in the last bit
+        child.T_nodes = np.clip(np.geomspace(*T_range, n), self.T_nodes[0], self.T_nodes[-1])
         if self.has_beta:
-            child.beta_nodes = np.linspace(*beta_range, n)
+            child.beta_nodes = np.clip(np.linspace(*beta_range, n), self.beta_nodes[0], self.beta_nodes[-1])
         child._check_nodes()
         spl = self._template_spline()
         x = np.log(child.T_nodes)
@@ -462,6 +463,7 @@ class GridPosterior:
         cols["ppp"] = self._ppp(flux, err, limit_only, node[:, :n_ppp], lamp[:, :n_ppp], rng)
         coarse_at = (lambda f: self._narrow(sd_lnT, sd_b, f))
         flags = self._flags(T, beta, ok, coarse_at(_COARSE))
+        flags = [fl + ("poor_fit",) if p < POOR_FIT_PPP else fl for fl, p in zip(flags, cols["ppp"])]
         for key, c in cols.items():
             if c.dtype.kind == "f":
                 c[~ok] = np.nan

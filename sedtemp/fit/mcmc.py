@@ -12,12 +12,12 @@ import numpy as np
 from scipy.optimize import minimize
 from scipy.stats import qmc
 
-from ..errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning
+from ..errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning, SedtempWarning
 from ..likelihood import Calibration, PhotometryLikelihood
 from ._data import prepare, require_bands, resolve_prior
 from .grid import GridPosterior, _axis_nodes, _prior_sd
 from .result import FitResult
-from .summary import trust_flags
+from .summary import POOR_FIT_PPP, trust_flags
 
 __all__ = ["fit_source", "LogPosterior", "default_model"]
 
@@ -267,6 +267,10 @@ def _make_result(sampler, tau, burn, converged, post, model, bands, prior, phot,
     ppp = float(np.mean(chi_rep >= chi_obs))
     n_used = int(like.detected.sum())
     flags = []
+    if ppp < POOR_FIT_PPP:
+        flags.append("poor_fit")
+        warnings.warn(f"posterior predictive p-value {ppp:.3g} < {POOR_FIT_PPP}: the model does not "
+                      "describe the data (flag 'poor_fit')", SedtempWarning, stacklevel=3)
     if not converged:
         flags.append("not_converged")
         warnings.warn(f"MCMC not converged after {chain.shape[0]} steps (tau = {np.round(tau, 1)}); "

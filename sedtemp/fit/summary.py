@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["QUANTILES", "quantile_columns", "EDGE_FRACTION", "EDGE_MASS", "PRIOR_WIDTH_RATIO"]
+__all__ = ["QUANTILES", "quantile_columns", "EDGE_FRACTION", "EDGE_MASS", "PRIOR_WIDTH_RATIO",
+           "POOR_FIT_PPP"]
 
 #: Posterior quantiles reported for every parameter: column suffix -> probability.
 QUANTILES = {"p2_5": 0.025, "p16": 0.16, "median": 0.5, "p84": 0.84, "p97_5": 0.975}
@@ -21,6 +22,12 @@ EDGE_MASS = 0.05
 #: Posterior sd / prior sd above which a parameter is flagged as prior-dominated.
 #: (A posterior that is the prior has ratio 1; 0.6 means the data narrowed it by < 40 %.)
 PRIOR_WIDTH_RATIO = 0.6
+
+
+#: Posterior predictive p-value below which the fit is flagged 'poor_fit': the
+#: model does not describe the data (wrong model, underestimated errors, a
+#: blended or multi-temperature source). 1 % is common practice.
+POOR_FIT_PPP = 0.01
 
 
 def quantile_columns(name: str) -> list[str]:
