@@ -51,6 +51,8 @@ _REFINE = 0.5
 #: In-cell jitter of the draws is scaled to at most this many posterior sd
 #: (uniform jitter of width w adds w^2/12 to the variance: <= 2 % here).
 _JITTER = 0.49
+#: Zoom levels at most (a factor ~8 finer each): resolves S/N up to ~10^4.
+_ZOOM_LEVELS = 3
 #: Nodes per axis of a zoomed grid (window ~ +-5 sd: cells of ~0.4 sd, so the
 #: uniform in-cell jitter of the draws adds ~1 % to the variance).
 _ZOOM_NODES = 25
@@ -392,7 +394,7 @@ class GridPosterior:
         return node, T, beta, np.log10(amp)
 
     def summarise(self, flux, err, limit_only, *, n_draws=500, n_ppp=100, rng=None, keep_draws=False,
-                  refine=True):
+                  refine=True, _depth=0):
         """Posterior summaries for a block of sources (SI arrays, see :meth:`log_posterior`).
 
         ``rng`` is a seed or Generator for the whole block, or a list with one
@@ -400,8 +402,10 @@ class GridPosterior:
         of how sources are grouped into blocks).
 
         With ``refine`` (default), a source whose posterior is narrower than
-        one cell is evaluated again on a zoomed grid around its posterior
-        (:meth:`zoomed`), and its summaries and draws come from there.
+        half a cell is evaluated again on a zoomed grid around its posterior
+        (:meth:`zoomed`), and its summaries and draws come from there; the
+        zoom repeats (each level ~8x finer) up to _ZOOM_LEVELS times, so very
+        high S/N posteriors are resolved too.
 
         Returns
         -------
@@ -468,10 +472,11 @@ class GridPosterior:
             if c.dtype.kind == "f":
                 c[~ok] = np.nan
         draws = {"T": T, "beta": beta, self.amp_name: lamp}
-        if refine:
+        if refine and _depth < _ZOOM_LEVELS:
             for i in np.flatnonzero(coarse_at(_REFINE) & ok):  # only the narrow posteriors
                 self._refine_row(i, cols, flags, draws, flux, err, limit_only, sd_lnT, sd_b,
-                                 n_draws=n_draws, n_ppp=n_ppp, rng=rng.row(i))
+                                 n_draws=n_draws, n_ppp=n_ppp, rng=rng.row(i), depth=_depth + 1)
+        if _depth == 0:
             self._warn(flags)
         extra = {"posterior": cube, "flags": flags}
         if keep_draws:
@@ -485,7 +490,8 @@ class GridPosterior:
             out |= sd_b < cells * np.diff(self.beta_nodes).max()
         return out
 
-    def _refine_row(self, i, cols, flags, draws, flux, err, limit_only, sd_lnT, sd_b, *, n_draws, n_ppp, rng):
+    def _refine_row(self, i, cols, flags, draws, flux, err, limit_only, sd_lnT, sd_b, *, n_draws, n_ppp, rng,
+                    depth):
         """Re-evaluate source ``i`` on a zoomed grid around its posterior; update in place."""
         lt = np.log(self.T_nodes)
         dlt = np.diff(lt).max()
@@ -499,7 +505,7 @@ class GridPosterior:
         child = self.zoomed((np.exp(lo), np.exp(hi)), b_rng)
         sl = slice(i, i + 1)
         c2, e2 = child.summarise(flux[sl], err[sl], limit_only[sl], n_draws=n_draws, n_ppp=n_ppp,
-                                 rng=rng, keep_draws=True, refine=False)
+                                 rng=rng, keep_draws=True, refine=True, _depth=depth)
         for key, val in c2.items():
             cols[key][i] = val[0]
         flags[i] = e2["flags"][0]
