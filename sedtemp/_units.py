@@ -66,3 +66,35 @@ def to_flux_si(value, *, name="flux"):
         raise InputError(
             f"{name}: unit {q.unit} is not a flux density (use Jy, mJy or W m-2 Hz-1)"
         ) from err
+
+
+def read_two_columns(path, *, what, example_units, format=None):
+    """The first two columns of a table file as Quantities; both must carry units.
+
+    Parameters
+    ----------
+    path : str or Path
+    what : str
+        What the table is, for messages (e.g. "opacity table").
+    example_units : str
+        Units to suggest when a column has none (e.g. "um and cm2 / g").
+    format : str, optional
+        astropy ``Table.read`` format; default from the file.
+    """
+    from pathlib import Path
+
+    from astropy.table import Table
+
+    path = Path(path)
+    try:
+        tab = Table.read(path, format=format) if format else Table.read(path)
+    except Exception as err:  # astropy raises many types for unreadable files
+        raise InputError(f"cannot read {what} {path}: {err}") from err
+    if len(tab.colnames) < 2:
+        raise InputError(f"{what} {path} needs two columns, found {len(tab.colnames)}")
+    c0, c1 = tab.columns[0], tab.columns[1]
+    for col in (c0, c1):
+        if col.unit is None:
+            raise InputError(f"{what} {path}: column '{col.name}' has no unit; "
+                             f"write the file as ECSV with units (e.g. {example_units})")
+    return u.Quantity(c0), u.Quantity(c1)

@@ -8,13 +8,11 @@ two differ by the gas-to-dust ratio, and models that take a dust mass need
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import astropy.units as u
 import numpy as np
-from astropy.table import Table
 
-from ._units import to_hz, to_si
+from ._units import read_two_columns, to_hz, to_si
 from .errors import InputError
 
 __all__ = ["Opacity", "PowerLawOpacity", "SaturatedPowerLawOpacity", "TabulatedOpacity"]
@@ -140,21 +138,9 @@ class TabulatedOpacity(Opacity):
         must carry units (e.g. an ECSV header). A column without a unit is an
         error, never a guess.
         """
-        path = Path(path)
-        try:
-            tab = Table.read(path, format=format) if format else Table.read(path)
-        except Exception as err:  # astropy raises many types for unreadable files
-            raise InputError(f"cannot read opacity table {path}: {err}") from err
-        if len(tab.colnames) < 2:
-            raise InputError(f"opacity table {path} needs two columns, found {len(tab.colnames)}")
-        c0, c1 = tab.columns[0], tab.columns[1]
-        for col in (c0, c1):
-            if col.unit is None:
-                raise InputError(
-                    f"opacity table {path}: column '{col.name}' has no unit; "
-                    "write the file as ECSV with units (e.g. um and cm2 / g)"
-                )
-        return cls(u.Quantity(c0), u.Quantity(c1), per=per)
+        nu, kappa = read_two_columns(path, what="opacity table", example_units="um and cm2 / g",
+                                     format=format)
+        return cls(nu, kappa, per=per)
 
     def kappa_si(self, nu_hz, beta=None):
         lnu = np.log(np.asarray(nu_hz, dtype=float))

@@ -15,9 +15,8 @@ from pathlib import Path
 import astropy.constants as const
 import astropy.units as u
 import numpy as np
-from astropy.table import Table
 
-from ._units import to_hz, to_kelvin, to_si
+from ._units import read_two_columns, to_hz, to_kelvin, to_si
 from .errors import InputError
 from .planck import C_LIGHT, H_PLANCK, SIGMA_SB, _planck_nu_si
 
@@ -448,19 +447,7 @@ class Tabulated(RadiationField):
 
 
 def _read_two_columns(path):
-    path = Path(path)
-    try:
-        tab = Table.read(path)
-    except Exception as err:  # astropy raises many types for unreadable files
-        raise InputError(f"cannot read radiation-field table {path}: {err}") from err
-    if len(tab.colnames) < 2:
-        raise InputError(f"radiation-field table {path} needs two columns, found {len(tab.colnames)}")
-    c0, c1 = tab.columns[0], tab.columns[1]
-    for col in (c0, c1):
-        if col.unit is None:
-            raise InputError(f"radiation-field table {path}: column '{col.name}' has no unit; "
-                             "write it as ECSV with units (e.g. um and W / (m2 Hz sr))")
-    return u.Quantity(c0), u.Quantity(c1)
+    return read_two_columns(path, what="radiation-field table", example_units="um and W / (m2 Hz sr)")
 
 
 def _check_factor(factor):
