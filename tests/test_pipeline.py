@@ -252,7 +252,9 @@ def test_demo_subset_end_to_end(tmp_path, monkeypatch):
     z = (np.asarray(res["T_median"][cons]) - np.asarray(truth["T_true"][cons])) / (
         0.5 * (np.asarray(res["T_p84"][cons]) - np.asarray(res["T_p16"][cons])))
     assert np.mean(np.abs(z) < 2) >= 0.8  # ~95 % expected for calibrated 68 % intervals
-    assert (tmp_path / "results-report.txt").exists() and (tmp_path / "results-draws.h5").exists()
+    assert (tmp_path / "results-report.txt").exists()
+    # the draws file needs the optional h5py (sedtemp[hdf5]); without it the demo goes on without
+    assert (tmp_path / "results-draws.h5").exists() == (importlib.util.find_spec("h5py") is not None)
     # the demo leaves the catalogue plots and the plots of its flagged sources (up to the cap)
     for name in ("population", "comparison"):
         assert (tmp_path / f"{name}.pdf").stat().st_size > 0 and (tmp_path / f"{name}.png").stat().st_size > 0
