@@ -3,6 +3,7 @@
 import astropy.units as u
 import numpy as np
 import pytest
+from astropy.table import Table
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
@@ -40,3 +41,27 @@ def source(model, bands):
     theta = np.array([[TRUTH["log10_mass"], TRUTH["T"], TRUTH["beta"]]])
     f, err, _ = simulate(model, bands, theta, 20.0, np.random.default_rng(11))
     return f[0], err[0]
+
+
+#: Bands of the invented catalogue used by the pipeline and CLI tests.
+CATALOG_WAVE = (70, 160, 250, 350, 500)
+
+
+def invented_catalog(n, seed, unit=u.Jy):
+    """Invented sources (test data only): modified blackbodies at 400 pc, 8 % noise.
+
+    Columns ``name``, ``F<w>`` and ``E<w>`` (flux and error in ``unit``) for the
+    top-hat bands of CATALOG_WAVE.
+    """
+    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in CATALOG_WAVE])
+    rng = np.random.default_rng(seed)
+    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
+    f = (bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta))
+         * (u.W / u.m**2 / u.Hz)).to_value(unit)
+    e = 0.08 * f
+    t = Table()
+    t["name"] = [f"S{i:03d}" for i in range(n)]
+    for j, w in enumerate(CATALOG_WAVE):
+        t[f"F{w}"] = (f[:, j] + e[:, j] * rng.standard_normal(n)) * unit
+        t[f"E{w}"] = e[:, j] * unit
+    return t

@@ -12,28 +12,15 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
+from conftest import CATALOG_WAVE, invented_catalog
 from sedtemp import __version__
 from sedtemp.cli import main
 
-WAVE = (70, 160, 250, 350, 500)
+WAVE = CATALOG_WAVE
 
 
 def _catalog(n, seed=5):
-    """Invented sources (test data only): modified blackbodies at 400 pc, 8 % noise."""
-    from sedtemp.bands import Band, BandSet
-    from sedtemp.models import ModifiedBlackbody
-
-    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in WAVE])
-    rng = np.random.default_rng(seed)
-    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
-    f = bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta)) / 1e-29
-    e = 0.08 * f
-    t = Table()
-    t["name"] = [f"S{i:03d}" for i in range(n)]
-    for j, w in enumerate(WAVE):
-        t[f"F{w}"] = (f[:, j] + e[:, j] * rng.standard_normal(n)) * u.mJy
-        t[f"E{w}"] = e[:, j] * u.mJy
-    return t
+    return invented_catalog(n, seed, unit=u.mJy)
 
 
 def _workflow_text(extra_fit="", executor="serial", chunk=4, extra_output='source_plots = "none"', extra=""):
