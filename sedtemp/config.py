@@ -95,6 +95,7 @@ from pathlib import Path
 
 import astropy.units as u
 
+from .fields import FIELD_GROUP  # the entry-point group of field kinds, defined once
 from .errors import ConfigError, InputError
 
 __all__ = [
@@ -103,7 +104,6 @@ __all__ = [
     "parse_workflow",
     "parse_quantity",
     "lookup_model",
-    "lookup_field",
     "MODEL_GROUP",
     "FIELD_GROUP",
     "OUTPUT_FORMATS",
@@ -112,8 +112,6 @@ __all__ = [
 
 #: Entry-point group under which other packages register SED model classes.
 MODEL_GROUP = "sedtemp.models"
-#: Entry-point group under which other packages register radiation-field factories.
-FIELD_GROUP = "sedtemp.fields"
 #: ``[output] source_plots`` values: which sources get corner, SED and trace plots.
 SOURCE_PLOT_CHOICES = ("none", "flagged", "all")
 #: Output format keyword -> (astropy writer, file suffix).
@@ -266,35 +264,6 @@ def lookup_model(name):
     raise ConfigError(f"[model] name: unknown model {name!r}; choose one of "
                       f"{sorted(MODELS) + sorted(eps)} or register one under the "
                       f"entry-point group '{MODEL_GROUP}'")
-
-
-def _builtin_fields():
-    from . import radiation
-
-    return {"isrf": radiation.ISRF, "star": radiation.Star, "cmb": radiation.CMB,
-            "blackbody": radiation.Blackbody, "table": radiation.Tabulated}
-
-
-def lookup_field(kind):
-    """Radiation-field factory for component ``kind`` (built-in or ``sedtemp.fields`` entry point).
-
-    Raises
-    ------
-    ConfigError
-        Unknown kind; the message lists the built-in and registered kinds.
-    """
-    eps = _registered(FIELD_GROUP)
-    try:
-        builtin = _builtin_fields()
-    except ImportError:  # radiation module not available: only registered fields
-        builtin = {}
-    if kind in builtin:
-        return builtin[kind]
-    if kind in eps:
-        return eps[kind].load()
-    raise ConfigError(f"[[field.components]] kind: unknown field {kind!r}; choose one of "
-                      f"{sorted(builtin) + sorted(eps)} or register one under the "
-                      f"entry-point group '{FIELD_GROUP}'")
 
 
 @dataclass

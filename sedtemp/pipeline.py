@@ -39,7 +39,8 @@ import numpy as np
 from astropy.table import Table
 
 from .catalog import MappedCatalog, map_catalog
-from .config import Workflow, lookup_field
+from .config import Workflow
+from .fields import build_field as _build_field_of
 from .errors import InputError, SedtempWarning
 
 __all__ = ["run", "fit", "predict", "compare", "process_chunk", "source_seed", "build_field",
@@ -67,25 +68,8 @@ def source_seed(seed: int, key: str) -> np.random.SeedSequence:
 
 
 def build_field(mapped: MappedCatalog, i: int):
-    """The radiation field of source ``i``: the sum of the workflow's components, attenuated.
-
-    Raises
-    ------
-    ConfigError
-        Unknown component kind.
-    InputError, TypeError
-        From the field constructors (bad or missing arguments).
-    """
-    total = None
-    for args in mapped.field_arguments(i):
-        args = dict(args)
-        factory = lookup_field(args.pop("kind"))
-        fld = factory(**args)
-        total = fld if total is None else total + fld
-    if total is None:
-        raise InputError("the workflow has no [[field.components]]; add at least one (e.g. kind = \"isrf\")")
-    av = float(mapped.A_V[i])
-    return total.attenuated(av) if av > 0 else total
+    """The radiation field of source ``i``: its components summed and attenuated (:func:`sedtemp.fields.build_field`)."""
+    return _build_field_of(mapped.field_arguments(i), A_V=float(mapped.A_V[i]))
 
 
 # ------------------------------------------------------------------------ fit

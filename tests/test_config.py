@@ -7,7 +7,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 
-from sedtemp.config import load_workflow, lookup_field, lookup_model, parse_quantity, parse_workflow
+from sedtemp import fields
+from sedtemp.config import load_workflow, lookup_model, parse_quantity, parse_workflow
 from sedtemp.errors import ConfigError
 from sedtemp.priors import Gaussian, Uniform
 
@@ -214,10 +215,14 @@ def test_entry_point_field(tmp_path, monkeypatch):
     _fake_distribution(tmp_path, "sedtemp.fields", "glow", "plugin_field_mod",
                        "def Thing(**kw):\n    return ('glow', kw)\n")
     monkeypatch.syspath_prepend(str(tmp_path))
-    assert lookup_field("glow")(U=2.0) == ("glow", {"U": 2.0})
+    fields._registered.cache_clear()  # kinds are resolved once per process
+    fields.field_factory.cache_clear()
+    assert fields.field_factory("glow")(U=2.0) == ("glow", {"U": 2.0})
     with pytest.raises(ConfigError, match=r"unknown field 'nope'; choose one of .*'glow'"):
-        lookup_field("nope")
+        fields.field_factory("nope")
     sys.modules.pop("plugin_field_mod", None)
+    fields._registered.cache_clear()
+    fields.field_factory.cache_clear()
 
 
 def test_bundled_template_workflow_is_valid():
