@@ -8,6 +8,7 @@ fails ``test_every_module_has_a_layer`` until it is given a layer below.
 """
 
 import ast
+import itertools
 from importlib import resources
 from pathlib import Path
 
@@ -201,7 +202,7 @@ def _path_in(comp: set[str], graph: dict[str, dict[str, int]]) -> list[str]:
 
 
 def _describe(path: list[str]) -> str:
-    return " -> ".join(f"{a} (line {GRAPH[a][b]})" for a, b in zip(path, path[1:])) + f" -> {path[-1]}"
+    return " -> ".join(f"{a} (line {GRAPH[a][b]})" for a, b in itertools.pairwise(path)) + f" -> {path[-1]}"
 
 
 def test_the_package_is_found_and_parsed():
