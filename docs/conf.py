@@ -9,7 +9,7 @@ from sedtemp._version import __version__
 
 project = "sedtemp"
 author = "The sedtemp developers"
-copyright = "2026, The sedtemp developers"  # noqa: A001 - the name Sphinx reads
+copyright = "2026, The sedtemp developers"
 version = release = __version__
 
 extensions = [
