@@ -15,7 +15,6 @@ version = release = __version__
 extensions = [
     "sphinx.ext.autodoc",
     "sphinx.ext.autosummary",
-    "sphinx.ext.intersphinx",
     "sphinx.ext.mathjax",
     "numpydoc",
 ]
@@ -44,8 +43,6 @@ rst_prolog = r"""
 numpydoc_show_class_members = False
 numpydoc_class_members_toctree = False
 numpydoc_xref_param_type = False
-
-intersphinx_mapping = {}  # offline build: no inventories fetched
 
 html_theme = "alabaster"
 html_title = f"sedtemp {release}"
