@@ -28,8 +28,8 @@ from sedtemp.compare import (
     compare_table,
     row_seed,
 )
+from sedtemp.grains import Grain
 from sedtemp.equilibrium import (
-    Grain,
     absorbed_power,
     emitted_power,
     equilibrium_temperature,

@@ -8,20 +8,16 @@ from scipy.integrate import quad
 from scipy.optimize import brentq
 
 from sedtemp.equilibrium import (
-    GasDustMedium,
-    Grain,
     absorbed_power,
     absorption_mean_opacity,
-    cooling_timescale,
     emission_mean_opacity,
     emitted_power,
     equilibrium_temperature,
-    heating_timescale,
     implied_U,
     predict_table,
-    stochastic_heating_check,
     temperature_for_power,
 )
+from sedtemp.grains import GasDustMedium, Grain, cooling_timescale, heating_timescale, stochastic_heating_check
 from sedtemp.errors import InputError
 from sedtemp.opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
 from sedtemp.planck import _planck_nu_si
