@@ -35,8 +35,9 @@ __all__ = ["DEFAULT_NU_GRID_HZ", "BETA_NODE_STEP", "EXTRAPOLATION_WARN_FRACTION"
 DEFAULT_NU_GRID_HZ = np.geomspace(1e9, NU_LYMAN, 4001)
 #: Spacing of the beta nodes (multiples of it, so a beta is interpolated from
 #: the same four nodes whatever the chunk): 4-point Lagrange in beta of ln P is
-#: accurate to ~1e-9 relative.
-BETA_NODE_STEP = 0.02
+#: accurate to ~1e-9 relative where ln P(beta) is smooth, and to ~1e-5 where a UV
+#: cap's break crosses a jump of the field spectrum (the Lyman edge, MMP83 joints).
+BETA_NODE_STEP = 0.01
 _DIRECT_MAX = 16  # up to this many distinct betas, the power is integrated at each directly
 
 

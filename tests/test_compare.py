@@ -369,3 +369,119 @@ def test_broad_beta_alone_does_not_make_a_cold_core_unconstrained():
     assert comp.flag == "shielded"
     comp_t = compare_draws(t, b, ISRF(1.0), OPACITY, fit_flags="T_at_prior_low", seed=1)
     assert comp_t.flag == "unconstrained"
+
+
+# ------------------------------------------------------------ chunk API
+def _demo_fields(n, rng):
+    """Per-source fields as the pipeline builds them: ISRF(U_i) + star at d_i + CMB, some attenuated."""
+    from sedtemp.fields import build_field
+
+    U = np.exp(rng.uniform(-1, 2, n))
+    d = rng.uniform(0.5, 3.0, n)
+    av = np.where(rng.uniform(size=n) < 0.5, 0.0, rng.uniform(0.5, 8.0, n))
+    comps = lambda i: [{"kind": "isrf", "U": U[i]},  # noqa: E731
+                       {"kind": "star", "teff": 3.3e4 * u.K, "luminosity": 1.2e5 * u.L_sun, "distance": d[i] * u.pc},
+                       {"kind": "cmb"}]
+    return [build_field(comps(i), A_V=av[i]) for i in range(n)]
+
+
+def test_compare_chunk_equals_compare_draws_per_source():
+    # identical random draws (one stream per source) and the same tables: every
+    # numeric column agrees to 1e-10 relative, flags and verdicts exactly
+    from sedtemp.compare import compare_chunk
+
+    rng = np.random.default_rng(21)
+    n, m = 12, 150
+    fields = _demo_fields(n, rng)
+    T = rng.uniform(15, 40, (n, m))
+    b = rng.uniform(1.2, 2.4, (n, m))
+    mass = np.exp(rng.normal(0, 1, (n, m)))
+    seeds = [row_seed(7, f"S{i}") for i in range(n)]
+    kw = dict(field_uncertainty={0: ScaleUncertainty(1.3), 1: DistanceUncertainty(0.2)}, opacity_uncertainty=0.3)
+    got = compare_chunk(T, b, fields, OPACITY, mass_draws=mass, seeds=seeds, keep_draws=True, **kw)
+    for i in range(n):
+        one = compare_draws(T[i], b[i], fields[i], OPACITY, mass_draws=mass[i], seed=row_seed(7, f"S{i}"), **kw)
+        for name, val in one.columns().items():
+            if isinstance(val, str):
+                assert got[name][i] == val, name
+            else:
+                np.testing.assert_allclose(got[name][i], val, rtol=1e-10, atol=0, err_msg=name)
+        np.testing.assert_allclose(got["draws_T_eq"][i], one.T_eq.to_value(u.K), rtol=1e-10)
+    assert set(got) - {"draws_T_eq", "draws_ratio"} == set(one.columns())
+
+
+def test_shared_uncertainty_is_common_to_every_source_whatever_the_chunk():
+    # shared=True: draw j of every source has the same factor (exact), independent of
+    # the source's own seed and of how the catalogue is chunked
+    from sedtemp.compare import compare_chunk
+
+    rng = np.random.default_rng(5)
+    n, m = 6, 400
+    fields = [ISRF(float(U)) for U in np.exp(rng.uniform(0, 2, n))]
+    T = np.full((n, m), 20.0)
+    b = np.full((n, m), 1.8)
+    seeds = [row_seed(3, i) for i in range(n)]
+    kw = dict(field_uncertainty=ScaleUncertainty(2.0, shared=True), opacity_uncertainty=0, run_seed=11,
+              keep_draws=True)
+    whole = compare_chunk(T, b, fields, OPACITY, seeds=seeds, **kw)
+    parts = [compare_chunk(T[s], b[s], fields[s], OPACITY, seeds=seeds[s], **kw) for s in (slice(0, 2), slice(2, 6))]
+    np.testing.assert_allclose(np.vstack([p["draws_T_eq"] for p in parts]), whole["draws_T_eq"], rtol=1e-12)
+    # T_eq / T_eq(nominal) is the same factor for every source: s_j^(1/(4+beta)) up to the UV cap
+    rel = whole["draws_T_eq"] / np.median(whole["draws_T_eq"], axis=1, keepdims=True)
+    np.testing.assert_allclose(rel, np.broadcast_to(rel[0], rel.shape), rtol=2e-3)
+    # an independent uncertainty does not do that
+    ind = compare_chunk(T, b, fields, OPACITY, seeds=seeds, field_uncertainty=1.0, opacity_uncertainty=0,
+                        keep_draws=True)
+    rel_i = ind["draws_T_eq"] / np.median(ind["draws_T_eq"], axis=1, keepdims=True)
+    assert abs(np.corrcoef(rel_i[0], rel_i[1])[0, 1]) < 0.2
+
+
+def test_catalogue_counts_widen_with_a_shared_field_error():
+    # 200 sources exactly at equilibrium: with an independent factor 2 the per-draw
+    # count of "heated" is binomial-narrow; with a shared one it swings with the draw
+    from sedtemp.compare import catalogue_counts, compare_chunk
+
+    n, m = 200, 300
+    fields = [ISRF(1.0)] * n
+    t_eq = float(equilibrium_temperature(ISRF(1.0), OPACITY).to_value(u.K))
+    T = np.full((n, m), t_eq)
+    b = np.full((n, m), BETA_TRUE)
+    seeds = [row_seed(0, i) for i in range(n)]
+    out = {}
+    for shared in (False, True):
+        got = compare_chunk(T, b, fields, OPACITY, seeds=seeds, opacity_uncertainty=0, keep_draws=True,
+                            field_uncertainty=ScaleUncertainty(2.0, shared=shared))
+        med, lo, hi = catalogue_counts(got["draws_ratio"])["extra_heating"]
+        out[shared] = hi - lo
+    # independent: sd of a binomial(200, p~0.24) ~ 6, 68 % width ~ 12; shared: all or nothing (~200)
+    assert out[False] < 25 and out[True] > 150
+
+
+def test_opacity_uncertainty_spreads_T_eq_by_its_factor():
+    # ln T_eq spread = ln(1 + x) / (4 + beta) at far-IR temperatures (T_eq ~ P^(1/(4+beta))
+    # while the emission is all on the power-law part); 4000 draws: 4 sd of the sd
+    t = np.full(4000, 20.0)
+    comp = compare_draws(t, 2.0, ISRF(1.0), OPACITY, field_uncertainty=None, opacity_uncertainty=1.0, seed=4)
+    sd = np.std(np.log(comp.T_eq.to_value(u.K)))
+    assert sd == pytest.approx(np.log(2.0) / 6.0, abs=4 * np.log(2.0) / 6.0 / np.sqrt(8000))
+    with pytest.raises(InputError, match="opacity_uncertainty must be None, a number >= 0"):
+        compare_draws(t[:5], 2.0, ISRF(1.0), OPACITY, opacity_uncertainty=-0.1)
+
+
+def test_bare_power_law_under_starlight_warns_and_reports_the_fraction():
+    from sedtemp.errors import OpacityExtrapolationWarning
+
+    pl = PowerLawOpacity(10.0, 1e12, 1.8)
+    t = np.linspace(30, 40, 50)
+    with pytest.warns(OpacityExtrapolationWarning, match=r"% of the absorbed power comes from wavelengths shortward of 30 um"):
+        comp = compare_draws(t, 1.8, ISRF(1.0), pl, opacity_uncertainty=0)
+    assert comp.columns()["opacity_extrapolated_fraction"] > 0.9  # MMP83 starlight: nearly all of it
+    capped = compare_draws(t, 1.8, ISRF(1.0), OPACITY, opacity_uncertainty=0)
+    assert capped.columns()["opacity_extrapolated_fraction"] == 0.0  # a capped law is never extrapolated
+
+
+def test_row_seed_is_the_source_seed():
+    from sedtemp.seeds import source_seed
+
+    a, b = row_seed(5, "SRC-1"), source_seed(5, "SRC-1")
+    assert np.array_equal(a.generate_state(4), b.generate_state(4))
