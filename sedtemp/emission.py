@@ -134,18 +134,23 @@ class EmissionTable:
         return self.spline.ev(x, b) + slope * (lnt - x), slope
 
     def power(self, temperature_k, beta) -> np.ndarray:
-        """P(T, beta) in W kg^-1 (broadcasting; T in K, > 0)."""
+        """P(T, beta) in W kg^-1 (broadcasting; T in K, >= 0)."""
         t, b = np.broadcast_arrays(np.asarray(temperature_k, float), np.asarray(beta, float))
         with np.errstate(divide="ignore"):
-            lnt = np.log(t)
-        out = np.exp(self._ln_power(np.where(t > 0, lnt, 0.0).ravel(), b.ravel())[0]).reshape(t.shape)
-        return np.where(t > 0, out, 0.0)
+            lnt = np.where(t > 0, np.log(np.where(t > 0, t, 1.0)), 0.0).ravel()
+        b = b.ravel()
+        out = self.spline.ev(np.clip(lnt, self.ln_t[0], self.ln_t[-1]), b)
+        far = (lnt < self.ln_t[0]) | (lnt > self.ln_t[-1])
+        if far.any():  # beyond the table: linear in ln T with the end slope
+            out[far] = self._ln_power(lnt[far], b[far])[0]
+        return np.where(t > 0, np.exp(out).reshape(t.shape), 0.0)
 
     def temperature(self, power, beta) -> np.ndarray:
         """The T (K) with P(T, beta) = ``power`` (W kg^-1, >= 0); 0 where the power is 0.
 
         Newton's method in ln T on the spline, from a power-law first guess;
-        converges to 1e-13 in ln P in a few steps (the spline is monotonic).
+        stops when the last step in ln T is below 1e-11 (the spline is monotonic
+        in ln T, and the step is quadratically convergent).
         """
         p, b = np.broadcast_arrays(np.asarray(power, float), np.asarray(beta, float))
         shape = p.shape
@@ -159,7 +164,7 @@ class EmissionTable:
             val, slope = self._ln_power(x, b)
             step = (val - lnp) / slope
             x = x - step
-            if not pos.any() or np.max(np.abs(step[pos])) < 1e-12:
+            if not pos.any() or np.max(np.abs(step[pos])) < 1e-11:
                 break
         return np.where(pos, np.exp(x), 0.0).reshape(shape)
 
