@@ -27,8 +27,16 @@ from .constants import NU_LYMAN
 from .errors import InputError
 from .radiation import AttenuatedField, RadiationField, ScaledField
 
-__all__ = ["DEFAULT_NU_GRID_HZ", "BETA_NODE_STEP", "EXTRAPOLATION_WARN_FRACTION", "Term", "frequency_grid",
-           "decompose", "absorbed_power_chunk", "warn_extrapolated"]
+__all__ = [
+    "BETA_NODE_STEP",
+    "DEFAULT_NU_GRID_HZ",
+    "EXTRAPOLATION_WARN_FRACTION",
+    "Term",
+    "absorbed_power_chunk",
+    "decompose",
+    "frequency_grid",
+    "warn_extrapolated",
+]
 
 #: Default absorption grid: 4001 log-spaced frequencies from 1e9 Hz (30 cm) to
 #: the Lyman limit (13.6 eV), where the ISRF stops; trapezoid rule in ln nu.

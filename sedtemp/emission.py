@@ -26,10 +26,10 @@ __all__ = [
     "BETA_RANGE",
     "T_TABLE_RANGE_K",
     "EmissionTable",
-    "emission_table",
-    "register_table",
     "check_beta",
+    "emission_table",
     "powerlaw_emitted_power",
+    "register_table",
 ]
 
 #: Emissivity indices accepted by the equilibrium and comparison code: the
@@ -171,9 +171,9 @@ class EmissionTable:
 
 def _build(opacity) -> EmissionTable:
     lo_t, hi_t = np.log(T_TABLE_RANGE_K[0]), np.log(T_TABLE_RANGE_K[1])
-    ln_t = np.linspace(lo_t, hi_t, int(round((hi_t - lo_t) / _DLNT)) + 1)
+    ln_t = np.linspace(lo_t, hi_t, round((hi_t - lo_t) / _DLNT) + 1)
     b_lo, b_hi = BETA_RANGE[0] - _BETA_MARGIN, BETA_RANGE[1] + _BETA_MARGIN
-    beta = np.linspace(b_lo, b_hi, int(round((b_hi - b_lo) / _DBETA)) + 1)
+    beta = np.linspace(b_lo, b_hi, round((b_hi - b_lo) / _DBETA) + 1)
     nu = _NU_EMIT_HZ
     w = 4 * np.pi * log_trapezoid_weights(nu)
     kw = opacity.kappa_si(nu[None, :], beta[:, None]) * w  # (n_beta, n_nu)

@@ -22,7 +22,12 @@ import numpy as np
 from astropy.table import Table
 
 from ._units import to_kelvin, to_si
-from .absorption import DEFAULT_NU_GRID_HZ, absorbed_power_chunk, frequency_grid, warn_extrapolated
+from .absorption import (
+    DEFAULT_NU_GRID_HZ,
+    absorbed_power_chunk,
+    frequency_grid,
+    warn_extrapolated,
+)
 from .emission import check_beta, emission_table
 from .errors import InputError
 from .planck import SIGMA_SB
@@ -31,14 +36,14 @@ from .radiation import HABING_FLUX, ISRF, NU_6EV, NU_LYMAN, RadiationField, Star
 __all__ = [
     "DEFAULT_NU_GRID_HZ",
     "absorbed_power",
-    "emitted_power",
-    "temperature_for_power",
-    "equilibrium_temperature",
-    "predict_chunk",
     "absorption_mean_opacity",
     "emission_mean_opacity",
+    "emitted_power",
+    "equilibrium_temperature",
     "implied_U",
+    "predict_chunk",
     "predict_table",
+    "temperature_for_power",
 ]
 
 _KAPPA_SI = u.m**2 / u.kg

@@ -26,11 +26,11 @@ from .radiation import RadiationField
 
 __all__ = [
     "HARD_POWER_FRACTION",
-    "Grain",
     "GasDustMedium",
-    "heating_timescale",
-    "cooling_timescale",
+    "Grain",
     "StochasticCheck",
+    "cooling_timescale",
+    "heating_timescale",
     "stochastic_heating_check",
 ]
 

@@ -8,18 +8,23 @@ two differ by the gas-to-dust ratio, and models that take a dust mass need
 
 from __future__ import annotations
 
+import hashlib
 
 import astropy.units as u
 import numpy as np
-
-import hashlib
 
 from ._units import read_two_columns, to_hz, to_si
 from .constants import DEFAULT_GAS_TO_DUST, DEFAULT_GRAIN_DENSITY
 from .errors import InputError
 
-__all__ = ["Opacity", "PowerLawOpacity", "SaturatedPowerLawOpacity", "TabulatedOpacity",
-           "DEFAULT_FIR_LAW_SHORTEST_UM", "DEFAULT_TABLE_BREAK_UM"]
+__all__ = [
+    "DEFAULT_FIR_LAW_SHORTEST_UM",
+    "DEFAULT_TABLE_BREAK_UM",
+    "Opacity",
+    "PowerLawOpacity",
+    "SaturatedPowerLawOpacity",
+    "TabulatedOpacity",
+]
 
 _KAPPA_SI = u.m**2 / u.kg
 _KAPPA_PUBLIC = u.cm**2 / u.g

@@ -10,14 +10,13 @@ and dim with :meth:`~RadiationField.attenuated` (an extinction curve from the
 
 from __future__ import annotations
 
+import functools
+import hashlib
 from pathlib import Path
 
 import astropy.constants as const
 import astropy.units as u
 import numpy as np
-
-import functools
-import hashlib
 
 from ._units import read_two_columns, to_hz, to_kelvin, to_si
 from .constants import NU_LYMAN, T_CMB0
@@ -25,23 +24,23 @@ from .errors import InputError
 from .planck import C_LIGHT, H_PLANCK, SIGMA_SB, _planck_nu_si
 
 __all__ = [
-    "RadiationField",
-    "ISRF",
-    "Blackbody",
-    "Star",
     "CMB",
-    "Tabulated",
-    "SumField",
-    "ScaledField",
-    "AttenuatedField",
-    "ExtinctionCurve",
-    "extinction_curve",
-    "U_to_G0",
-    "G0_to_U",
     "CMB_T0",
     "HABING_FLUX",
-    "NU_LYMAN",
+    "ISRF",
     "NU_6EV",
+    "NU_LYMAN",
+    "AttenuatedField",
+    "Blackbody",
+    "ExtinctionCurve",
+    "G0_to_U",
+    "RadiationField",
+    "ScaledField",
+    "Star",
+    "SumField",
+    "Tabulated",
+    "U_to_G0",
+    "extinction_curve",
 ]
 
 _J_UNIT = u.W / u.m**2 / u.Hz / u.sr

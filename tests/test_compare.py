@@ -12,8 +12,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-
 from conftest import simulate
+
 from sedtemp.bands import Band, BandSet
 from sedtemp.compare import (
     FLAGS,
@@ -28,7 +28,6 @@ from sedtemp.compare import (
     compare_table,
     row_seed,
 )
-from sedtemp.grains import Grain
 from sedtemp.equilibrium import (
     absorbed_power,
     emitted_power,
@@ -37,6 +36,7 @@ from sedtemp.equilibrium import (
 )
 from sedtemp.errors import GridWarning, InputError
 from sedtemp.fit import GridPosterior, fit_source
+from sedtemp.grains import Grain
 from sedtemp.models import ModifiedBlackbody
 from sedtemp.opacity import PowerLawOpacity, SaturatedPowerLawOpacity
 from sedtemp.radiation import ISRF, Star
@@ -379,7 +379,7 @@ def _demo_fields(n, rng):
     U = np.exp(rng.uniform(-1, 2, n))
     d = rng.uniform(0.5, 3.0, n)
     av = np.where(rng.uniform(size=n) < 0.5, 0.0, rng.uniform(0.5, 8.0, n))
-    comps = lambda i: [{"kind": "isrf", "U": U[i]},  # noqa: E731
+    comps = lambda i: [{"kind": "isrf", "U": U[i]},
                        {"kind": "star", "teff": 3.3e4 * u.K, "luminosity": 1.2e5 * u.L_sun, "distance": d[i] * u.pc},
                        {"kind": "cmb"}]
     return [build_field(comps(i), A_V=av[i]) for i in range(n)]
@@ -451,7 +451,7 @@ def test_catalogue_counts_widen_with_a_shared_field_error():
     for shared in (False, True):
         got = compare_chunk(T, b, fields, OPACITY, seeds=seeds, opacity_uncertainty=0, keep_draws=True,
                             field_uncertainty=ScaleUncertainty(2.0, shared=shared))
-        med, lo, hi = catalogue_counts(got["draws_ratio"])["extra_heating"]
+        _, lo, hi = catalogue_counts(got["draws_ratio"])["extra_heating"]
         out[shared] = hi - lo
     # independent: sd of a binomial(200, p~0.24) ~ 6, 68 % width ~ 12; shared: all or nothing (~200)
     assert out[False] < 25 and out[True] > 150

@@ -191,6 +191,7 @@ def test_absorbed_power_for_many_betas_matches_direct_integration():
     # reference: the same trapezoid integral done for each beta alone (exact
     # within the module), agreement 1e-6 relative (spline error ~1e-7).
     import astropy.units as u
+
     from sedtemp.opacity import SaturatedPowerLawOpacity
     from sedtemp.radiation import ISRF, Star
 

@@ -25,7 +25,7 @@ from .flags import classify, untrusted_flags, verdict
 from .thresholds import Thresholds
 from .uncertainty import _Shared, draw_factors, opacity_factors, resolve_uncertainty
 
-__all__ = ["W_PER_KG_IN_LSUN_PER_MSUN", "DRAWN", "compare_chunk", "column_names"]
+__all__ = ["DRAWN", "W_PER_KG_IN_LSUN_PER_MSUN", "column_names", "compare_chunk"]
 
 #: 1 W kg^-1 expressed in L_sun / M_sun (IAU 2015 nominal L_sun and M_sun, via astropy).
 W_PER_KG_IN_LSUN_PER_MSUN = float((u.W / u.kg).to(u.L_sun / u.solMass))
@@ -43,7 +43,7 @@ def column_names() -> list[str]:
 
 def evaluate(T, b, fields, opacity, fac, bounded, q_op):
     """Draw-level arrays (n, m) for sources with draws T, b, factors fac (n, m, k), bounded (n, k)."""
-    n, m = T.shape
+    n = T.shape[0]
     p_comp, p_x = absorbed_power_chunk(fields, opacity, b, extrapolated=True)
     k = p_comp.shape[-1]
     fac = fac[:, :, :k]

@@ -36,7 +36,7 @@ from .flags import untrusted_flags
 from .thresholds import Thresholds
 from .uncertainty import _Shared
 
-__all__ = ["Comparison", "compare_draws", "compare"]
+__all__ = ["Comparison", "compare", "compare_draws"]
 
 _W_PER_KG = u.W / u.kg
 

@@ -13,7 +13,7 @@ import numpy as np
 
 from .thresholds import UNTRUSTED_FIT_FLAGS, Thresholds
 
-__all__ = ["classify", "verdict", "untrusted_flags", "catalogue_counts"]
+__all__ = ["catalogue_counts", "classify", "untrusted_flags", "verdict"]
 
 
 def untrusted_flags(fit_flags) -> tuple:

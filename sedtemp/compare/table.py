@@ -13,10 +13,10 @@ from ..fit.summary import QUANTILES
 from ..radiation import RadiationField
 from ..seeds import source_seed
 from .chunk import column_names
-from .thresholds import Thresholds
 from .core import compare_draws
+from .thresholds import Thresholds
 
-__all__ = ["row_seed", "compare_table"]
+__all__ = ["compare_table", "row_seed"]
 
 _W_PER_KG = u.W / u.kg
 _UNITS = {"T_eq": u.K, "extra_power": _W_PER_KG, "extra_power_solar": u.L_sun / u.solMass,

@@ -26,13 +26,13 @@ from ..seeds import resolve_seed, source_seed
 
 __all__ = [
     "DEFAULT_OPACITY_UNCERTAINTY",
-    "FieldUncertainty",
-    "ScaleUncertainty",
     "DistanceUncertainty",
+    "FieldUncertainty",
     "ProjectedDistance",
-    "resolve_uncertainty",
+    "ScaleUncertainty",
     "draw_factors",
     "opacity_factors",
+    "resolve_uncertainty",
 ]
 
 #: Default fractional 1-sigma of kappa_FIR / kappa_abs (the far-IR opacity
