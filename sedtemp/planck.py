@@ -82,8 +82,8 @@ def planck_nu(nu, temperature):
     --------
     >>> import astropy.units as u
     >>> b = planck_nu(250 * u.um, 20 * u.K)
-    >>> b.unit
-    Unit("W / (Hz m2 sr)")
+    >>> b.unit == u.W / u.m**2 / u.Hz / u.sr
+    True
     """
     nu_hz = to_hz(nu, name="nu")
     t_k = to_kelvin(temperature)

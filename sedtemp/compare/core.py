@@ -158,6 +158,19 @@ def _check_field(field, opacity):
         raise InputError(f"compare: opacity must be a sedtemp.opacity.Opacity, got {type(opacity).__name__}")
 
 
+def _seed_of(seed):
+    """A SeedSequence or Generator from ``seed`` (None -> 0, an int, a sequence of ints, or either)."""
+    if isinstance(seed, (np.random.SeedSequence, np.random.Generator)):
+        return seed
+    if seed is None or isinstance(seed, (int, np.integer)):
+        return np.random.SeedSequence(resolve_seed(seed))
+    try:
+        return np.random.SeedSequence([int(v) for v in seed])
+    except (TypeError, ValueError) as err:
+        raise InputError(f"compare: seed must be None, a non-negative integer, a sequence of them, a "
+                         f"SeedSequence or a Generator, got {seed!r}") from err
+
+
 def compare_draws(T_draws, beta_draws, field, opacity, *, mass_draws=None, field_uncertainty=None,
                   opacity_uncertainty=None, projected=False, thresholds=None, grain=None, fit_flags=None,
                   seed=None, run_seed=None) -> Comparison:
@@ -246,8 +259,7 @@ def compare_draws(T_draws, beta_draws, field, opacity, *, mass_draws=None, field
     _check_field(field, opacity)
     th = Thresholds.from_any(thresholds)
     t, b, m = _prepare_draws(T_draws, beta_draws, mass_draws, opacity)
-    seq = seed if isinstance(seed, (np.random.SeedSequence, np.random.Generator)) else (
-        np.random.SeedSequence(resolve_seed(seed)))
+    seq = _seed_of(seed)
     fac, bounded, q_op = source_factors(field_uncertainty, field, projected, t.size, seq,
                                         opacity_uncertainty, _Shared(run_seed))
     ev = evaluate(t[None], b[None], [field], opacity, fac[None], bounded[None], q_op[None])
