@@ -40,6 +40,7 @@ BETA_RANGE = (0.0, 5.0)
 T_TABLE_RANGE_K = (0.5, 5000.0)
 _DLNT = 0.025  # node spacing in ln T
 _DBETA = 0.05  # node spacing in beta
+_DLNP = 0.05  # node spacing in ln P of the inverted table (first guesses only)
 _BETA_MARGIN = 0.2  # nodes beyond BETA_RANGE so the spline is interior everywhere
 # emission quadrature: 6001 log-spaced nodes, 1e7 Hz (3 m) to 3e16 Hz (10 nm),
 # enough for every T of the table (trapezoid in ln nu, checked against quad)
@@ -115,10 +116,11 @@ class EmissionTable:
     beta: np.ndarray
     ln_p: np.ndarray
     _spline: RectBivariateSpline | None = field(default=None, repr=False)
+    _inverse: RectBivariateSpline | None = field(default=None, repr=False)
 
     def __getstate__(self):
         state = dict(self.__dict__)
-        state["_spline"] = None  # rebuilt on first use: only the grid is shipped
+        state["_spline"] = state["_inverse"] = None  # rebuilt on first use: only the grid is shipped
         return state
 
     @property
@@ -145,26 +147,43 @@ class EmissionTable:
             out[far] = self._ln_power(lnt[far], b[far])[0]
         return np.where(t > 0, np.exp(out).reshape(t.shape), 0.0)
 
+    @property
+    def inverse(self) -> RectBivariateSpline:
+        """ln T(ln P, beta): the table inverted on a regular ln P grid (a first guess, ~1e-7)."""
+        if self._inverse is None:
+            fine = np.linspace(self.ln_t[0], self.ln_t[-1], 8 * (self.ln_t.size - 1) + 1)
+            lnp = self.spline(fine, self.beta)  # (n_fine, n_beta), increasing down each column
+            y = np.arange(lnp[0].min(), lnp[-1].max() + _DLNP, _DLNP)
+            lnt = np.empty((y.size, self.beta.size))
+            for k in range(self.beta.size):  # once per table, per beta node
+                col = lnp[:, k]
+                lo = (col[1] - col[0]) / (fine[1] - fine[0])
+                hi = (col[-1] - col[-2]) / (fine[-1] - fine[-2])
+                lnt[:, k] = np.interp(y, col, fine)
+                lnt[:, k] = np.where(y < col[0], fine[0] + (y - col[0]) / lo, lnt[:, k])
+                lnt[:, k] = np.where(y > col[-1], fine[-1] + (y - col[-1]) / hi, lnt[:, k])
+            self._inverse = RectBivariateSpline(y, self.beta, lnt, kx=3, ky=3, s=0)
+        return self._inverse
+
     def temperature(self, power, beta) -> np.ndarray:
         """The T (K) with P(T, beta) = ``power`` (W kg^-1, >= 0); 0 where the power is 0.
 
-        Newton's method in ln T on the spline, from a power-law first guess;
-        stops when the last step in ln T is below 1e-11 (the spline is monotonic
-        in ln T, and the step is quadratically convergent).
+        A first guess from the inverted table (:attr:`inverse`), then Newton's
+        method in ln T on the forward spline until the last step is below 1e-6
+        (quadratic convergence: the remaining error is then < 1e-11).
         """
         p, b = np.broadcast_arrays(np.asarray(power, float), np.asarray(beta, float))
         shape = p.shape
         p, b = p.ravel(), b.ravel()
         pos = p > 0
         lnp = np.log(np.where(pos, p, 1.0))
-        ref = np.full(p.shape, np.log(20.0))
-        val, slope = self._ln_power(ref, b)
-        x = ref + (lnp - val) / slope
+        inv = self.inverse
+        x = inv.ev(np.clip(lnp, inv.get_knots()[0][0], inv.get_knots()[0][-1]), b)
         for _ in range(30):
             val, slope = self._ln_power(x, b)
             step = (val - lnp) / slope
             x = x - step
-            if not pos.any() or np.max(np.abs(step[pos])) < 1e-11:
+            if not pos.any() or np.max(np.abs(step[pos])) < 1e-6:
                 break
         return np.where(pos, np.exp(x), 0.0).reshape(shape)
 
