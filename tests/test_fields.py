@@ -19,7 +19,7 @@ def test_components_decompose_into_a_shared_unit_spectrum_and_a_scale():
     cases = [ISRF(3.0), star, CMB(1.0), Blackbody(50.0, 1e-3), 2.5 * ISRF(2.0),
              Tabulated(np.array([1.0, 10.0, 100.0]) * u.um, np.array([1e-18, 3e-18, 1e-19]))]
     for c in cases:
-        key, unit, scale = c.unit_spectrum()
+        _, unit, scale = c.unit_spectrum()
         np.testing.assert_allclose(scale * unit.mean_intensity_si(nu), c.mean_intensity_si(nu), rtol=1e-14)
     assert ISRF(3.0).unit_spectrum()[0] == ISRF(0.2).unit_spectrum()[0]
     assert star.unit_spectrum()[0] == Blackbody(2e4).unit_spectrum()[0]  # a star is a diluted B_nu(T_eff)
