@@ -12,6 +12,7 @@ __all__ = [
     "ConvergenceWarning",
     "PriorEdgeWarning",
     "GridWarning",
+    "OpacityExtrapolationWarning",
 ]
 
 
@@ -49,3 +50,11 @@ class PriorEdgeWarning(SedtempWarning):
 
 class GridWarning(SedtempWarning):
     """A grid posterior touches the grid edge or is narrower than a grid cell."""
+
+
+class OpacityExtrapolationWarning(SedtempWarning):
+    """An opacity law is used where it is an extrapolation (e.g. a bare far-IR power law in the UV).
+
+    The fraction of the absorbed power that comes from there is also a result
+    column (``opacity_extrapolated_fraction``), so the pipeline can flag it.
+    """

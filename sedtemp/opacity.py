@@ -8,23 +8,36 @@ two differ by the gas-to-dust ratio, and models that take a dust mass need
 
 from __future__ import annotations
 
+import hashlib
 
 import astropy.units as u
 import numpy as np
 
 from ._units import read_two_columns, to_hz, to_si
+from .constants import DEFAULT_GAS_TO_DUST, DEFAULT_GRAIN_DENSITY
 from .errors import InputError
 
-__all__ = ["Opacity", "PowerLawOpacity", "SaturatedPowerLawOpacity", "TabulatedOpacity"]
+__all__ = [
+    "DEFAULT_FIR_LAW_SHORTEST_UM",
+    "DEFAULT_TABLE_BREAK_UM",
+    "Opacity",
+    "PowerLawOpacity",
+    "SaturatedPowerLawOpacity",
+    "TabulatedOpacity",
+]
 
 _KAPPA_SI = u.m**2 / u.kg
 _KAPPA_PUBLIC = u.cm**2 / u.g
 _PER_CHOICES = ("dust", "gas")
-#: Default material density of a grain, 3 g cm^-3 (between graphite, 2.2, and
-#: silicate, 3.5 g cm^-3; common practice), in kg m^-3.
-DEFAULT_GRAIN_DENSITY = 3000.0
-#: Default gas-to-dust mass ratio (common practice for the Milky Way).
-DEFAULT_GAS_TO_DUST = 100.0
+#: Shortest wavelength (um) at which a bare far-infrared power law is taken as
+#: measured; at shorter wavelengths it is an extrapolation (common practice:
+#: far-IR opacity laws are fitted longward of ~30 um).
+DEFAULT_FIR_LAW_SHORTEST_UM = 30.0
+#: Default break wavelength (um) of :class:`TabulatedOpacity`: beta changes the
+#: slope only longward of it (common practice: the far-IR slope of grain
+#: models is quoted beyond ~100 um).
+DEFAULT_TABLE_BREAK_UM = 100.0
+_C_UM_HZ = 2.99792458e14  # c in um Hz
 
 
 def _check_per(per):
@@ -51,6 +64,24 @@ class Opacity:
     def __call__(self, nu):
         """kappa_nu as a Quantity in cm^2 g^-1 (``nu``: Quantity, or bare um)."""
         return (self.kappa_si(to_hz(nu, name="nu")) * _KAPPA_SI).to(_KAPPA_PUBLIC)
+
+    def cache_key(self) -> tuple:
+        """Hashable description of the law *except its beta* (tables are shared across beta).
+
+        Two opacities with equal keys have equal ``kappa_si(nu, beta)`` for every
+        beta. The default is the object's identity (never shared).
+        """
+        return ("object", id(self))
+
+    @property
+    def extrapolated_above_hz(self) -> float | None:
+        """Frequency (Hz) above which the law is an extrapolation (None: valid everywhere)."""
+        return None
+
+    @property
+    def pivot_hz(self) -> float:
+        """Frequency (Hz) about which a change of beta tilts the law (kappa fixed there)."""
+        raise NotImplementedError
 
 
 class PowerLawOpacity(Opacity):
@@ -91,6 +122,19 @@ class PowerLawOpacity(Opacity):
         """Copy of this opacity with another emissivity index."""
         return PowerLawOpacity(self.kappa0_si * _KAPPA_SI, self.nu0_hz * u.Hz, beta, per=self.per)
 
+    def cache_key(self) -> tuple:
+        return ("powerlaw", self.kappa0_si, self.nu0_hz, self.per)
+
+    @property
+    def pivot_hz(self) -> float:
+        """The reference frequency nu0: beta tilts the law about it."""
+        return self.nu0_hz
+
+    @property
+    def extrapolated_above_hz(self) -> float | None:
+        """A bare far-IR law is extrapolated shortward of :data:`DEFAULT_FIR_LAW_SHORTEST_UM`."""
+        return _C_UM_HZ / DEFAULT_FIR_LAW_SHORTEST_UM
+
     def __repr__(self):
         k = (self.kappa0_si * _KAPPA_SI).to_value(_KAPPA_PUBLIC)
         return (f"PowerLawOpacity(kappa0={k:.4g} cm2/g, nu0={self.nu0_hz:.4g} Hz, "
@@ -101,10 +145,11 @@ class TabulatedOpacity(Opacity):
     """Opacity interpolated (log-log) in a table of kappa against frequency or wavelength.
 
     Outside the table, kappa is extrapolated as a power law with the slope of
-    the two end points. ``beta`` (used only for labelling and by
-    :meth:`kappa_si` when a slope change is requested) is the log-log slope of
-    the table's long-wavelength end; passing ``beta`` to :meth:`kappa_si`
-    tilts the table as (nu/nu_end)^(beta - beta_table) about that end.
+    the two end points. ``beta`` changes the far-infrared slope only: longward
+    of the break wavelength lambda_b the table is tilted as
+    (nu / nu_b)^(beta - beta_table); at and shortward of lambda_b (the UV,
+    optical and mid-IR, which set the absorbed power) the table is used as
+    given, whatever beta.
 
     Parameters
     ----------
@@ -113,9 +158,33 @@ class TabulatedOpacity(Opacity):
     kappa : Quantity
         Opacity, convertible to cm^2 g^-1.
     per : {"dust", "gas"}, keyword-only
+    break_wavelength : Quantity or float, keyword-only
+        lambda_b; a bare number is in um. Default
+        :data:`DEFAULT_TABLE_BREAK_UM` (100 um).
+
+    Attributes
+    ----------
+    beta : float
+        The table's own mean log-log slope longward of the break (between
+        lambda_b and the longest tabulated wavelength; the end slope when the
+        whole table lies longward of the break).
+    break_nu_hz : float
+        nu_b = c / lambda_b in Hz, the pivot of beta.
+
+    Raises
+    ------
+    InputError
+        Bad table, or a non-positive break wavelength.
+
+    Examples
+    --------
+    >>> import astropy.units as u
+    >>> tab = TabulatedOpacity([0.1, 1.0, 100.0, 1000.0] * u.um, [3e4, 1e4, 30.0, 0.4] * u.cm**2 / u.g)
+    >>> bool(tab.kappa_si(3e15, beta=1.0) == tab.kappa_si(3e15, beta=2.5))
+    True
     """
 
-    def __init__(self, nu_or_wavelength, kappa, *, per="dust"):
+    def __init__(self, nu_or_wavelength, kappa, *, per="dust", break_wavelength=None):
         nu = to_hz(nu_or_wavelength, name="table abscissa")
         k = to_si(kappa, _KAPPA_SI, default_unit=_KAPPA_PUBLIC, name="kappa")
         if nu.ndim != 1 or nu.shape != k.shape or nu.size < 2:
@@ -128,10 +197,19 @@ class TabulatedOpacity(Opacity):
         if np.any(np.diff(self._lnu) == 0):
             raise InputError("opacity table: repeated frequency or wavelength")
         self.per = _check_per(per)
-        self.beta = float((self._lk[1] - self._lk[0]) / (self._lnu[1] - self._lnu[0]))
+        lam_b = DEFAULT_TABLE_BREAK_UM if break_wavelength is None else break_wavelength
+        self.break_nu_hz = float(to_hz(lam_b, name="break_wavelength"))
+        if not (np.isfinite(self.break_nu_hz) and self.break_nu_hz > 0):
+            raise InputError(f"TabulatedOpacity: break_wavelength must be positive, got {break_wavelength!r}")
+        self._lnb = np.log(self.break_nu_hz)
+        lk_b = float(self._table(np.array(self._lnb)))
+        if self._lnu[0] < self._lnb:
+            self.beta = float((lk_b - self._lk[0]) / (self._lnb - self._lnu[0]))
+        else:
+            self.beta = float((self._lk[1] - self._lk[0]) / (self._lnu[1] - self._lnu[0]))
 
     @classmethod
-    def from_file(cls, path, *, per="dust", format=None):
+    def from_file(cls, path, *, per="dust", format=None, break_wavelength=None):
         """Read a two-column table (ECSV, or ASCII with units in the column metadata).
 
         The first column is frequency or wavelength, the second kappa; both
@@ -140,21 +218,40 @@ class TabulatedOpacity(Opacity):
         """
         nu, kappa = read_two_columns(path, what="opacity table", example_units="um and cm2 / g",
                                      format=format)
-        return cls(nu, kappa, per=per)
+        return cls(nu, kappa, per=per, break_wavelength=break_wavelength)
+
+    def _table(self, lnu):
+        lk = np.interp(lnu, self._lnu, self._lk)
+        s_lo = (self._lk[1] - self._lk[0]) / (self._lnu[1] - self._lnu[0])
+        s_hi = (self._lk[-1] - self._lk[-2]) / (self._lnu[-1] - self._lnu[-2])
+        lk = np.where(lnu < self._lnu[0], self._lk[0] + s_lo * (lnu - self._lnu[0]), lk)
+        return np.where(lnu > self._lnu[-1], self._lk[-1] + s_hi * (lnu - self._lnu[-1]), lk)
 
     def kappa_si(self, nu_hz, beta=None):
         lnu = np.log(np.asarray(nu_hz, dtype=float))
-        lk = np.interp(lnu, self._lnu, self._lk)
-        lo = lnu < self._lnu[0]
-        hi = lnu > self._lnu[-1]
-        s_lo = (self._lk[1] - self._lk[0]) / (self._lnu[1] - self._lnu[0])
-        s_hi = (self._lk[-1] - self._lk[-2]) / (self._lnu[-1] - self._lnu[-2])
-        lk = np.where(lo, self._lk[0] + s_lo * (lnu - self._lnu[0]), lk)
-        lk = np.where(hi, self._lk[-1] + s_hi * (lnu - self._lnu[-1]), lk)
-        k = np.exp(lk)
+        lk = self._table(lnu)
         if beta is not None:
-            k = k * np.exp((np.asarray(beta, float) - self.beta) * (lnu - self._lnu[0]))
-        return k
+            # tilt only longward of the break: exactly the table at nu >= nu_b
+            lk = lk + (np.asarray(beta, float) - self.beta) * np.minimum(lnu - self._lnb, 0.0)
+        return np.exp(lk)
+
+    def cache_key(self) -> tuple:
+        h = hashlib.blake2b(self._lnu.tobytes() + self._lk.tobytes(), digest_size=16).hexdigest()
+        return ("table", h, self.break_nu_hz, self.per)
+
+    @property
+    def pivot_hz(self) -> float:
+        """The break frequency: beta tilts the table about it."""
+        return self.break_nu_hz
+
+    @property
+    def extrapolated_above_hz(self) -> float | None:
+        """Above the highest tabulated frequency kappa is an extrapolation."""
+        return float(np.exp(self._lnu[-1]))
+
+    def __repr__(self):
+        return (f"TabulatedOpacity({self._lnu.size} nodes, break at {_C_UM_HZ / self.break_nu_hz:.4g} um, "
+                f"beta={self.beta:.4g}, per={self.per!r})")
 
 
 class SaturatedPowerLawOpacity(Opacity):
@@ -183,7 +280,8 @@ class SaturatedPowerLawOpacity(Opacity):
     grain_radius : Quantity or float, keyword-only
         Grain radius a; a bare number is in micrometres.
     grain_density : Quantity or float, keyword-only
-        Material density rho; a bare number is in g cm^-3. Default 3 g cm^-3.
+        Material density rho; a bare number is in g cm^-3. Default
+        :data:`sedtemp.constants.DEFAULT_GRAIN_DENSITY` (3 g cm^-3).
     break_wavelength : Quantity or float, keyword-only
         Wavelength (or frequency) of the break; a bare number is in micrometres.
     per : {"dust", "gas"}, keyword-only
@@ -264,6 +362,16 @@ class SaturatedPowerLawOpacity(Opacity):
             kw.update(grain_radius=self.grain_radius_m * u.m,
                       grain_density=self.grain_density_si * u.kg / u.m**3)
         return SaturatedPowerLawOpacity(self.kappa0_si * _KAPPA_SI, self.nu0_hz * u.Hz, beta, **kw)
+
+    def cache_key(self) -> tuple:
+        cap = ("break", self.break_nu_hz) if self.break_nu_hz is not None else (
+            "grain", self.grain_radius_m, self.grain_density_si, self.gas_to_dust)
+        return ("saturated", self.kappa0_si, self.nu0_hz, self.per, *cap)
+
+    @property
+    def pivot_hz(self) -> float:
+        """The reference frequency nu0 of the far-IR law."""
+        return self.nu0_hz
 
     def __repr__(self):
         k = (self.kappa0_si * _KAPPA_SI).to_value(_KAPPA_PUBLIC)

@@ -82,8 +82,8 @@ def planck_nu(nu, temperature):
     --------
     >>> import astropy.units as u
     >>> b = planck_nu(250 * u.um, 20 * u.K)
-    >>> b.unit
-    Unit("W / (Hz m2 sr)")
+    >>> b.unit == u.W / u.m**2 / u.Hz / u.sr
+    True
     """
     nu_hz = to_hz(nu, name="nu")
     t_k = to_kelvin(temperature)
@@ -134,7 +134,8 @@ def powerlaw_planck_integral(temperature, beta, nu0):
     beta : array_like
         Power-law index, > -3. Broadcasts with ``temperature``.
     nu0 : Quantity or float
-        Reference frequency or wavelength (bare number: micrometres).
+        Reference frequency or wavelength; a bare number is a frequency in Hz
+        (as ``nu0`` of :class:`sedtemp.opacity.PowerLawOpacity`).
 
     Returns
     -------
@@ -147,7 +148,7 @@ def powerlaw_planck_integral(temperature, beta, nu0):
     for beta = 0 this is sigma T^4 / pi.
     """
     return _powerlaw_planck_integral_si(
-        to_kelvin(temperature), beta, to_hz(nu0, name="nu0")
+        to_kelvin(temperature), beta, to_hz(nu0, default_unit=u.Hz, name="nu0")
     ) * (u.W / u.m**2 / u.sr)
 
 
@@ -161,7 +162,7 @@ def planck_mean_powerlaw(temperature, beta, nu0):
     beta : array_like
         Power-law index, > -3.
     nu0 : Quantity or float
-        Reference frequency or wavelength (bare number: micrometres).
+        Reference frequency or wavelength; a bare number is a frequency in Hz.
 
     Returns
     -------
@@ -175,7 +176,7 @@ def planck_mean_powerlaw(temperature, beta, nu0):
     exact for a power law.
     """
     t_k = to_kelvin(temperature)
-    nu0_hz = to_hz(nu0, name="nu0")
+    nu0_hz = to_hz(nu0, default_unit=u.Hz, name="nu0")
     return _powerlaw_planck_integral_si(t_k, beta, nu0_hz) / (SIGMA_SB * t_k**4 / np.pi)
 
 

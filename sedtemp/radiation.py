@@ -10,6 +10,8 @@ and dim with :meth:`~RadiationField.attenuated` (an extinction curve from the
 
 from __future__ import annotations
 
+import functools
+import hashlib
 from pathlib import Path
 
 import astropy.constants as const
@@ -17,36 +19,36 @@ import astropy.units as u
 import numpy as np
 
 from ._units import read_two_columns, to_hz, to_kelvin, to_si
+from .constants import NU_LYMAN, T_CMB0
 from .errors import InputError
 from .planck import C_LIGHT, H_PLANCK, SIGMA_SB, _planck_nu_si
 
 __all__ = [
-    "RadiationField",
-    "ISRF",
-    "Blackbody",
-    "Star",
     "CMB",
-    "Tabulated",
-    "SumField",
-    "ScaledField",
-    "AttenuatedField",
-    "ExtinctionCurve",
-    "U_to_G0",
-    "G0_to_U",
     "CMB_T0",
     "HABING_FLUX",
-    "NU_LYMAN",
+    "ISRF",
     "NU_6EV",
+    "NU_LYMAN",
+    "AttenuatedField",
+    "Blackbody",
+    "ExtinctionCurve",
+    "G0_to_U",
+    "RadiationField",
+    "ScaledField",
+    "Star",
+    "SumField",
+    "Tabulated",
+    "U_to_G0",
+    "extinction_curve",
 ]
 
 _J_UNIT = u.W / u.m**2 / u.Hz / u.sr
 _EV = const.e.si.value
-#: Lyman limit, 13.6 eV (hydrogen ionisation energy, rounded as usual), in Hz.
-NU_LYMAN = 13.6 * _EV / H_PLANCK
 #: Lower edge of the Habing band, 6 eV, in Hz.
 NU_6EV = 6.0 * _EV / H_PLANCK
-#: CMB temperature today, T0 = 2.72548 +- 0.00057 K (Fixsen 2009, ApJ 707, 916).
-CMB_T0 = 2.72548
+#: Old name of :data:`sedtemp.constants.T_CMB0` (kept importable; same object).
+CMB_T0 = T_CMB0
 #: Habing (1968) field: 4 pi int J_nu dnu over 6-13.6 eV = 1.6e-3 erg cm^-2 s^-1
 #: (the usual G0 = 1 normalisation; Habing 1968, BAN 19, 421), in W m^-2.
 HABING_FLUX = 1.6e-6
@@ -130,6 +132,17 @@ class RadiationField:
         """Additive terms of the field (a list; ``[self]`` unless this is a sum)."""
         return [self]
 
+    def unit_spectrum(self):
+        """``(key, unit_field, scale)`` with J_nu = scale x unit_field's J_nu.
+
+        Fields whose spectra differ only by a factor return equal, hashable
+        keys and the same unit spectrum, so the absorbed power of many sources
+        is integrated once per spectrum and multiplied by ``scale`` afterwards
+        (:mod:`sedtemp.absorption`). The default is the field itself with
+        scale 1, keyed by identity (never shared).
+        """
+        return ("object", id(self)), self, 1.0
+
     def mean_intensity(self, nu):
         """J_nu as a Quantity in W m^-2 Hz^-1 sr^-1 (``nu``: Quantity, or bare um)."""
         return self.mean_intensity_si(to_hz(nu, name="nu")) * _J_UNIT
@@ -173,7 +186,7 @@ class RadiationField:
             J_nu exp(-tau_nu), tau_nu = A_V (ln 10 / 2.5) A(lambda)/A(V); see
             :class:`ExtinctionCurve` for the extrapolation outside the curve.
         """
-        return AttenuatedField(self, A_V, curve=ExtinctionCurve(law, R_V=R_V))
+        return AttenuatedField(self, A_V, curve=extinction_curve(law, R_V=R_V))
 
     def energy_density(self, *, nu_min=None, nu_max=None, n=20001):
         """Energy density u = (4 pi / c) int J_nu dnu, as a Quantity in J m^-3.
@@ -237,6 +250,9 @@ class ISRF(RadiationField):
     def scaled(self, factor):
         return ISRF(self.U * _check_factor(factor))
 
+    def unit_spectrum(self):
+        return ("isrf",), _ISRF1, self.U
+
     @property
     def G0(self):
         """Habing G0 of this field (exact integral of the MMP83 UV laws)."""
@@ -249,6 +265,9 @@ class ISRF(RadiationField):
 
     def __repr__(self):
         return f"ISRF(U={self.U:g})"
+
+
+_ISRF1 = ISRF(1.0)
 
 
 class Blackbody(RadiationField):
@@ -276,6 +295,10 @@ class Blackbody(RadiationField):
 
     def scaled(self, factor):
         return Blackbody(self.temperature_k, self.dilution * _check_factor(factor))
+
+    def unit_spectrum(self):
+        # a star, the CMB and a diluted blackbody of one temperature share B_nu(T)
+        return ("blackbody", self.temperature_k), Blackbody(self.temperature_k), self.dilution
 
     def __repr__(self):
         return f"Blackbody({self.temperature_k:g} K, dilution={self.dilution:.4g})"
@@ -434,6 +457,10 @@ class Tabulated(RadiationField):
         inside = (lnu >= self._lnu[0]) & (lnu <= self._lnu[-1])
         return np.where(inside & (out > 1e-320), out, 0.0)
 
+    def unit_spectrum(self):
+        h = hashlib.blake2b(self._lnu.tobytes() + self._j.tobytes(), digest_size=16).hexdigest()
+        return ("table", h), self, 1.0
+
     def scaled(self, factor):
         new = object.__new__(Tabulated)
         f = _check_factor(factor)
@@ -470,6 +497,10 @@ class ScaledField(RadiationField):
     def scaled(self, factor):
         return ScaledField(self.field, self.factor * _check_factor(factor))
 
+    def unit_spectrum(self):
+        key, unit, scale = self.field.unit_spectrum()
+        return key, unit, scale * self.factor
+
     def __repr__(self):
         return f"{self.factor:g} * {self.field!r}"
 
@@ -499,7 +530,7 @@ class SumField(RadiationField):
 
     def attenuated(self, A_V, *, law="G23", R_V=3.1):
         """Each component attenuated by the same A_V (so ``components`` stay separable)."""
-        curve = ExtinctionCurve(law, R_V=R_V)
+        curve = extinction_curve(law, R_V=R_V)
         return SumField([AttenuatedField(c, A_V, curve=curve) for c in self._components])
 
     def __repr__(self):
@@ -553,6 +584,8 @@ class ExtinctionCurve:
             raise InputError(f"extinction law {law!r} has no x_range; pass a dust_extinction model")
         self.model = model
         self.name = law if isinstance(law, str) else type(law).__name__
+        #: hashable identity of the curve: (name, R_V) for a named law, else the model object
+        self.key = (self.name, float(R_V)) if isinstance(law, str) else ("model", id(model))
         self._xmin, self._xmax = (float(v) for v in model.x_range)
         self._a_min = float(model(self._xmin / u.micron))
         self._a_max = float(model(self._xmax / u.micron))
@@ -573,6 +606,18 @@ class ExtinctionCurve:
 
     def __repr__(self):
         return f"ExtinctionCurve({self.name!r})"
+
+
+@functools.lru_cache(maxsize=64)
+def _named_curve(law: str, R_V: float) -> ExtinctionCurve:
+    return ExtinctionCurve(law, R_V=R_V)
+
+
+def extinction_curve(law="G23", *, R_V=3.1) -> ExtinctionCurve:
+    """An :class:`ExtinctionCurve`, shared (built once per process) for a named law and R_V."""
+    if isinstance(law, str):
+        return _named_curve(law, float(R_V))
+    return ExtinctionCurve(law, R_V=R_V)
 
 
 class AttenuatedField(RadiationField):

@@ -12,8 +12,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-
 from conftest import simulate
+
 from sedtemp.bands import Band, BandSet
 from sedtemp.compare import (
     FLAGS,
@@ -29,7 +29,6 @@ from sedtemp.compare import (
     row_seed,
 )
 from sedtemp.equilibrium import (
-    Grain,
     absorbed_power,
     emitted_power,
     equilibrium_temperature,
@@ -37,6 +36,7 @@ from sedtemp.equilibrium import (
 )
 from sedtemp.errors import GridWarning, InputError
 from sedtemp.fit import GridPosterior, fit_source
+from sedtemp.grains import Grain
 from sedtemp.models import ModifiedBlackbody
 from sedtemp.opacity import PowerLawOpacity, SaturatedPowerLawOpacity
 from sedtemp.radiation import ISRF, Star
@@ -178,14 +178,14 @@ def test_projected_distance_gives_an_upper_bound_not_shielding(grid, model, band
     field = ISRF(1.0) + star_proj
     t_true = _t_eq(ISRF(1.0) + Star(2e4 * u.K, luminosity=1e4 * u.L_sun, distance=0.9 * u.pc))
     draws, flags = _realisations(grid, model, bands, t_true, 50, 20.0, 13)
-    proj = compare_table(_table(flags), field, OPACITY, draws=draws, projected=True, seed=5)
+    proj = compare_table(_table(flags), field, OPACITY, draws=draws, projected=True, seed=5, opacity_uncertainty=0)
     assert np.all(proj["flag"] == "consistent") and np.all(proj["T_eq_is_upper_bound"])
     assert all("upper bound" in v and "cannot show shielding" in v for v in proj["verdict"])
-    taken = compare_table(_table(flags), field, OPACITY, draws=draws, projected=False, seed=5)
+    taken = compare_table(_table(flags), field, OPACITY, draws=draws, projected=False, seed=5, opacity_uncertainty=0)
     assert np.all(taken["flag"] == "shielded") and not np.any(taken["T_eq_is_upper_bound"])
     # keyed by the component object: the same rule
     one = {k: v[0] for k, v in draws.items()}
-    by_obj = compare_draws(one["T"], one["beta"], field, OPACITY, field_uncertainty={star_proj: ProjectedDistance()})
+    by_obj = compare_draws(one["T"], one["beta"], field, OPACITY, field_uncertainty={star_proj: ProjectedDistance()}, opacity_uncertainty=0)
     assert by_obj.flag == "consistent" and by_obj.T_eq_is_upper_bound
 
 
@@ -195,9 +195,9 @@ def test_projected_distance_still_allows_extra_heating_and_floor_shielding():
     field = ISRF(1.0) + Star(2e4 * u.K, luminosity=1e4 * u.L_sun, distance=0.3 * u.pc)
     rng = np.random.default_rng(17)
     hot = 1.5 * _t_eq(field) * (1 + 0.01 * rng.standard_normal(500))
-    assert compare_draws(hot, BETA_TRUE, field, OPACITY, projected=True).flag == "extra_heating"
+    assert compare_draws(hot, BETA_TRUE, field, OPACITY, projected=True, opacity_uncertainty=0).flag == "extra_heating"
     cold = 0.6 * _t_eq(ISRF(1.0)) * (1 + 0.01 * rng.standard_normal(500))
-    comp = compare_draws(cold, BETA_TRUE, field, OPACITY, projected=True)
+    comp = compare_draws(cold, BETA_TRUE, field, OPACITY, projected=True, opacity_uncertainty=0)
     assert comp.flag == "shielded" and "without the projected star" in comp.verdict
     # the floor is T_eq of the ISRF alone (forward module, same beta): rel 1e-6
     assert comp.T_eq_floor.to_value(u.K) == pytest.approx(np.full(500, _t_eq(ISRF(1.0))), rel=1e-6)
@@ -225,13 +225,14 @@ def test_scale_and_distance_uncertainty_quantiles():
     assert np.quantile(d, [0.1587, 0.8413]) == pytest.approx([1 / 1.2**2, 1 / 0.8**2], rel=0.03)
 
 
+@pytest.mark.filterwarnings("ignore::sedtemp.errors.OpacityExtrapolationWarning")  # a bare law on purpose
 def test_power_law_T_eq_follows_the_field_scale():
     # Exact for kappa ~ nu^beta: T_eq ~ s^(1/(4+beta)), so (4+beta) ln(T_eq/T_eq(1)) = ln s,
     # whose sd is ln 2 for ScaleUncertainty(2); 4000 draws: sd of the sd ~ ln2 / sqrt(8000),
     # allow 4 of them (0.031).
     pl = PowerLawOpacity(10.0, 1e12, beta=2.0)
     t0 = float(equilibrium_temperature(ISRF(2.0), pl).to_value(u.K))
-    comp = compare_draws(np.full(4000, t0), 2.0, ISRF(2.0), pl, field_uncertainty=1.0, seed=8)  # 1 + 1.0: factor 2
+    comp = compare_draws(np.full(4000, t0), 2.0, ISRF(2.0), pl, field_uncertainty=1.0, seed=8, opacity_uncertainty=0)  # 1 + 1.0: factor 2
     ln_s = 6.0 * np.log(comp.T_eq.to_value(u.K) / t0)
     assert np.std(ln_s) == pytest.approx(np.log(2.0), abs=0.031)
     # the implied scale of the drawn field is 1/s exactly (same T): field_scale * s = 1
@@ -246,7 +247,7 @@ def test_draws_agree_with_the_forward_module():
     rng = np.random.default_rng(4)
     b = rng.uniform(1.4, 2.2, 600)
     t = rng.uniform(15, 40, 600)
-    comp = compare_draws(t * u.K, b, ISRF(5.0), OPACITY, mass_draws=np.full(600, 2.0) * u.solMass)
+    comp = compare_draws(t * u.K, b, ISRF(5.0), OPACITY, mass_draws=np.full(600, 2.0) * u.solMass, opacity_uncertainty=0)
     ref = equilibrium_temperature(ISRF(5.0), OPACITY, beta=b[:50]).to_value(u.K)
     assert comp.T_eq.to_value(u.K)[:50] == pytest.approx(ref, rel=1e-4)
     assert comp.U_implied[:50] == pytest.approx(implied_U(t[:50], OPACITY, beta=b[:50]), rel=1e-6)
@@ -368,3 +369,119 @@ def test_broad_beta_alone_does_not_make_a_cold_core_unconstrained():
     assert comp.flag == "shielded"
     comp_t = compare_draws(t, b, ISRF(1.0), OPACITY, fit_flags="T_at_prior_low", seed=1)
     assert comp_t.flag == "unconstrained"
+
+
+# ------------------------------------------------------------ chunk API
+def _demo_fields(n, rng):
+    """Per-source fields as the pipeline builds them: ISRF(U_i) + star at d_i + CMB, some attenuated."""
+    from sedtemp.fields import build_field
+
+    U = np.exp(rng.uniform(-1, 2, n))
+    d = rng.uniform(0.5, 3.0, n)
+    av = np.where(rng.uniform(size=n) < 0.5, 0.0, rng.uniform(0.5, 8.0, n))
+    comps = lambda i: [{"kind": "isrf", "U": U[i]},
+                       {"kind": "star", "teff": 3.3e4 * u.K, "luminosity": 1.2e5 * u.L_sun, "distance": d[i] * u.pc},
+                       {"kind": "cmb"}]
+    return [build_field(comps(i), A_V=av[i]) for i in range(n)]
+
+
+def test_compare_chunk_equals_compare_draws_per_source():
+    # identical random draws (one stream per source) and the same tables: every
+    # numeric column agrees to 1e-10 relative, flags and verdicts exactly
+    from sedtemp.compare import compare_chunk
+
+    rng = np.random.default_rng(21)
+    n, m = 12, 150
+    fields = _demo_fields(n, rng)
+    T = rng.uniform(15, 40, (n, m))
+    b = rng.uniform(1.2, 2.4, (n, m))
+    mass = np.exp(rng.normal(0, 1, (n, m)))
+    seeds = [row_seed(7, f"S{i}") for i in range(n)]
+    kw = dict(field_uncertainty={0: ScaleUncertainty(1.3), 1: DistanceUncertainty(0.2)}, opacity_uncertainty=0.3)
+    got = compare_chunk(T, b, fields, OPACITY, mass_draws=mass, seeds=seeds, keep_draws=True, **kw)
+    for i in range(n):
+        one = compare_draws(T[i], b[i], fields[i], OPACITY, mass_draws=mass[i], seed=row_seed(7, f"S{i}"), **kw)
+        for name, val in one.columns().items():
+            if isinstance(val, str):
+                assert got[name][i] == val, name
+            else:
+                np.testing.assert_allclose(got[name][i], val, rtol=1e-10, atol=0, err_msg=name)
+        np.testing.assert_allclose(got["draws_T_eq"][i], one.T_eq.to_value(u.K), rtol=1e-10)
+    assert set(got) - {"draws_T_eq", "draws_ratio"} == set(one.columns())
+
+
+def test_shared_uncertainty_is_common_to_every_source_whatever_the_chunk():
+    # shared=True: draw j of every source has the same factor (exact), independent of
+    # the source's own seed and of how the catalogue is chunked
+    from sedtemp.compare import compare_chunk
+
+    rng = np.random.default_rng(5)
+    n, m = 6, 400
+    fields = [ISRF(float(U)) for U in np.exp(rng.uniform(0, 2, n))]
+    T = np.full((n, m), 20.0)
+    b = np.full((n, m), 1.8)
+    seeds = [row_seed(3, i) for i in range(n)]
+    kw = dict(field_uncertainty=ScaleUncertainty(2.0, shared=True), opacity_uncertainty=0, run_seed=11,
+              keep_draws=True)
+    whole = compare_chunk(T, b, fields, OPACITY, seeds=seeds, **kw)
+    parts = [compare_chunk(T[s], b[s], fields[s], OPACITY, seeds=seeds[s], **kw) for s in (slice(0, 2), slice(2, 6))]
+    np.testing.assert_allclose(np.vstack([p["draws_T_eq"] for p in parts]), whole["draws_T_eq"], rtol=1e-12)
+    # T_eq / T_eq(nominal) is the same factor for every source: s_j^(1/(4+beta)) up to the UV cap
+    rel = whole["draws_T_eq"] / np.median(whole["draws_T_eq"], axis=1, keepdims=True)
+    np.testing.assert_allclose(rel, np.broadcast_to(rel[0], rel.shape), rtol=2e-3)
+    # an independent uncertainty does not do that
+    ind = compare_chunk(T, b, fields, OPACITY, seeds=seeds, field_uncertainty=1.0, opacity_uncertainty=0,
+                        keep_draws=True)
+    rel_i = ind["draws_T_eq"] / np.median(ind["draws_T_eq"], axis=1, keepdims=True)
+    assert abs(np.corrcoef(rel_i[0], rel_i[1])[0, 1]) < 0.2
+
+
+def test_catalogue_counts_widen_with_a_shared_field_error():
+    # 200 sources exactly at equilibrium: with an independent factor 2 the per-draw
+    # count of "heated" is binomial-narrow; with a shared one it swings with the draw
+    from sedtemp.compare import catalogue_counts, compare_chunk
+
+    n, m = 200, 300
+    fields = [ISRF(1.0)] * n
+    t_eq = float(equilibrium_temperature(ISRF(1.0), OPACITY).to_value(u.K))
+    T = np.full((n, m), t_eq)
+    b = np.full((n, m), BETA_TRUE)
+    seeds = [row_seed(0, i) for i in range(n)]
+    out = {}
+    for shared in (False, True):
+        got = compare_chunk(T, b, fields, OPACITY, seeds=seeds, opacity_uncertainty=0, keep_draws=True,
+                            field_uncertainty=ScaleUncertainty(2.0, shared=shared))
+        _, lo, hi = catalogue_counts(got["draws_ratio"])["extra_heating"]
+        out[shared] = hi - lo
+    # independent: sd of a binomial(200, p~0.24) ~ 6, 68 % width ~ 12; shared: all or nothing (~200)
+    assert out[False] < 25 and out[True] > 150
+
+
+def test_opacity_uncertainty_spreads_T_eq_by_its_factor():
+    # ln T_eq spread = ln(1 + x) / (4 + beta) at far-IR temperatures (T_eq ~ P^(1/(4+beta))
+    # while the emission is all on the power-law part); 4000 draws: 4 sd of the sd
+    t = np.full(4000, 20.0)
+    comp = compare_draws(t, 2.0, ISRF(1.0), OPACITY, field_uncertainty=None, opacity_uncertainty=1.0, seed=4)
+    sd = np.std(np.log(comp.T_eq.to_value(u.K)))
+    assert sd == pytest.approx(np.log(2.0) / 6.0, abs=4 * np.log(2.0) / 6.0 / np.sqrt(8000))
+    with pytest.raises(InputError, match="opacity_uncertainty must be None, a number >= 0"):
+        compare_draws(t[:5], 2.0, ISRF(1.0), OPACITY, opacity_uncertainty=-0.1)
+
+
+def test_bare_power_law_under_starlight_warns_and_reports_the_fraction():
+    from sedtemp.errors import OpacityExtrapolationWarning
+
+    pl = PowerLawOpacity(10.0, 1e12, 1.8)
+    t = np.linspace(30, 40, 50)
+    with pytest.warns(OpacityExtrapolationWarning, match=r"% of the absorbed power comes from wavelengths shortward of 30 um"):
+        comp = compare_draws(t, 1.8, ISRF(1.0), pl, opacity_uncertainty=0)
+    assert comp.columns()["opacity_extrapolated_fraction"] > 0.9  # MMP83 starlight: nearly all of it
+    capped = compare_draws(t, 1.8, ISRF(1.0), OPACITY, opacity_uncertainty=0)
+    assert capped.columns()["opacity_extrapolated_fraction"] == 0.0  # a capped law is never extrapolated
+
+
+def test_row_seed_is_the_source_seed():
+    from sedtemp.seeds import source_seed
+
+    a, b = row_seed(5, "SRC-1"), source_seed(5, "SRC-1")
+    assert np.array_equal(a.generate_state(4), b.generate_state(4))

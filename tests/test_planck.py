@@ -96,3 +96,11 @@ def test_peak_matches_wien_condition(beta):
     assert x_peak == pytest.approx(x_root, abs=2e-5)
     if beta == 0.0:
         assert x_root == pytest.approx(WIEN_X_NU, rel=1e-12)
+
+
+def test_bare_nu0_is_hz_as_in_the_opacity():
+    # one rule for a bare reference frequency: Hz in planck and in PowerLawOpacity alike (exact)
+    from sedtemp.planck import planck_mean_powerlaw, powerlaw_planck_integral
+
+    assert powerlaw_planck_integral(20.0, 2.0, 1e12).value == powerlaw_planck_integral(20.0, 2.0, 1e12 * u.Hz).value
+    assert planck_mean_powerlaw(20.0, 2.0, 1e12) == planck_mean_powerlaw(20.0, 2.0, 1e12 * u.Hz)
