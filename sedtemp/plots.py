@@ -170,6 +170,8 @@ def _column(table, name, what, *, kelvin=False):
         col = table[name]
     except (KeyError, ValueError, IndexError):
         raise InputError(f"{what}: the table has no column {name!r}") from None
+    if hasattr(col, "filled") and getattr(col, "mask", None) is not None:
+        col = col.filled(np.nan)  # a masked cell (a skipped source read back from a file) is no value
     if kelvin:
         return np.atleast_1d(to_kelvin(col if getattr(col, "unit", None) is None
                                        else u.Quantity(col), name=name)).astype(float)
@@ -195,12 +197,20 @@ def _interval(table, p, what, *, kelvin):
 def _flags(table, what):
     if not _has(table, "flag"):
         return None
-    flags = np.asarray([str(f) for f in np.atleast_1d(np.asarray(table["flag"]))])
-    unknown = sorted(set(flags.tolist()) - set(FLAG_STYLES))
+    col = table["flag"]
+    if hasattr(col, "filled") and getattr(col, "mask", None) is not None:
+        col = col.filled("")  # masked: a source with no comparison (skipped, failed)
+    flags = np.asarray([str(f) for f in np.atleast_1d(np.asarray(col))])
+    flags[np.isin(flags, _NO_FLAG)] = ""  # not drawn
+    unknown = sorted(set(flags.tolist()) - set(FLAG_STYLES) - {""})
     if unknown:
         raise InputError(f"{what}: unknown flag value(s) {unknown} in column 'flag'; "
                          f"expected one of {list(FLAG_STYLES)}")
     return flags
+
+
+#: Values of the ``flag`` column meaning "no comparison" (a skipped or failed source): not drawn.
+_NO_FLAG = ("", "none", "--")
 
 
 def _draws_matrix(result, n_draws):
@@ -319,7 +329,8 @@ def _corner_marks(axes, vals, kind):
 
 
 def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | None = None,
-                fig: FigureBase | None = None, save_to: str | Path | None = None) -> FigureBase:
+                fig: FigureBase | None = None, save_to: str | Path | None = None,
+                corner_options: Mapping | None = None) -> FigureBase:
     """Corner plot of one source's posterior: T, beta and the amplitude.
 
     Parameters
@@ -340,6 +351,12 @@ def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | No
         An empty figure to draw on; default one of single-column width.
     save_to : str or Path, optional, keyword-only
         If given, also :func:`save_figure` to ``<save_to>.pdf`` and ``.png``.
+    corner_options : mapping, optional, keyword-only
+        Keyword arguments of :func:`corner.corner` itself, passed through
+        as given and taking precedence over ours (e.g. ``{"bins": 50,
+        "smooth": None, "quantiles": [0.16, 0.5, 0.84],
+        "show_titles": True}``). ``fig``, ``labels`` and ``truths`` are
+        set through this function's own arguments and refused here.
 
     Returns
     -------
@@ -349,7 +366,8 @@ def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | No
     ------
     InputError
         Unknown parameter in ``truths``, a wrong number of values, ``T_eq``
-        without a ``T`` parameter, or a non-empty ``fig``.
+        without a ``T`` parameter, a non-empty ``fig``, or
+        ``corner_options`` that is not a mapping or names a reserved key.
 
     Notes
     -----
@@ -364,6 +382,7 @@ def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | No
     k = len(order)
     data = np.column_stack([np.asarray(result.samples[n], float) for n in order])
     labels = [_param_label(n, result.units.get(n, ""), result.model) for n in order]
+    extra = _corner_options(corner_options)
     t_eq = None
     if T_eq is not None:
         if "T" not in order:
@@ -371,10 +390,11 @@ def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | No
         t_eq = _t_eq_interval(T_eq)
     with _style():
         fig = _new_figure(fig, (SINGLE_COLUMN_IN, SINGLE_COLUMN_IN))
-        corner.corner(data, fig=fig, labels=labels, bins=30, smooth=1.0, levels=(0.68, 0.95),
-                      color=_SED_COLOURS["median"], plot_datapoints=False, fill_contours=True,
-                      max_n_ticks=3, labelpad=0.05, label_kwargs={"fontsize": 8.0},
-                      hist_kwargs={"lw": 0.9})
+        options = {"bins": 30, "smooth": 1.0, "levels": (0.68, 0.95), "color": _SED_COLOURS["median"],
+                   "plot_datapoints": False, "fill_contours": True, "max_n_ticks": 3, "labelpad": 0.05,
+                   "label_kwargs": {"fontsize": 8.0}, "hist_kwargs": {"lw": 0.9}}
+        options.update(extra)
+        corner.corner(data, fig=fig, labels=labels, **options)
         axes = np.array(fig.axes).reshape(k, k)
         for ax in fig.axes:
             ax.tick_params(which="both", **_TICKS)
@@ -393,6 +413,44 @@ def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | No
             handles.append(Line2D([], [], color="k", ls="-", label="true value"))
         fig.legend(handles=handles, loc="upper right", bbox_to_anchor=(0.97, 0.97), fontsize=7.0)
     return _finish(fig, save_to)
+
+
+#: corner.corner arguments set through corner_plot's own arguments, never through corner_options.
+_CORNER_RESERVED = ("fig", "labels", "truths", "data", "xs")
+
+
+def _corner_options(options):
+    """A checked copy of ``corner_options`` (an explicit mapping, so a typo cannot pass unseen)."""
+    if options is None:
+        return {}
+    if not isinstance(options, Mapping):
+        raise InputError(f"corner_options must be a mapping of corner.corner arguments, got {type(options).__name__}")
+    bad = [k for k in options if k in _CORNER_RESERVED]
+    if bad:
+        raise InputError(f"corner_options: {bad[0]!r} is set by corner_plot itself; use its own argument "
+                         "(fig=, truths=) instead")
+    known = _corner_arguments()
+    unknown = [k for k in options if k not in known]
+    if unknown:
+        from ._units import did_you_mean
+
+        raise InputError(f"corner_options: {unknown[0]!r} is not an argument of corner.corner"
+                         f"{did_you_mean(unknown[0], sorted(known))}")
+    return dict(options)
+
+
+def _corner_arguments() -> set:
+    """Names corner.corner accepts: its own parameters and those of corner.hist2d it forwards."""
+    import inspect
+
+    import corner
+
+    names = set()
+    for fn in (corner.corner, corner.hist2d, getattr(getattr(corner, "core", None), "corner_impl", None)):
+        if fn is not None:
+            names |= {n for n, p in inspect.signature(fn).parameters.items()
+                      if p.kind not in (p.VAR_KEYWORD, p.VAR_POSITIONAL)}
+    return names - set(_CORNER_RESERVED) - {"x", "y", "ax", "new_fig"}  # hist2d's own, set per panel
 
 
 def _corner_t_eq(axes, it, t_eq):
@@ -591,7 +649,7 @@ def comparison_plot(table: Table | Mapping, *, fig: FigureBase | None = None,
     flags = _flags(table, what)
     flags = np.full(t_fit.size, "consistent") if flags is None else flags
     with _style():
-        fig = _new_figure(fig, (SINGLE_COLUMN_IN, SINGLE_COLUMN_IN))
+        fig = _new_figure(fig, (SINGLE_COLUMN_IN, 1.26 * SINGLE_COLUMN_IN))
         ax = fig.add_subplot()
         ends = np.concatenate([t_fit - fit_lo, t_fit + fit_hi, t_eq - eq_lo, t_eq + eq_hi])
         ends = ends[np.isfinite(ends)]
@@ -613,7 +671,10 @@ def comparison_plot(table: Table | Mapping, *, fig: FigureBase | None = None,
         ax.set_xlabel(r"$T_\mathrm{eq}\ [\mathrm{K}]$ (radiative equilibrium)")
         ax.set_ylabel(r"$T_\mathrm{fit}\ [\mathrm{K}]$ (SED fit)")
         _ticks(ax)
-        ax.legend(loc="upper left", fontsize=7.0)
+        # below the axes, never on the data: with many sources no corner of the plot is empty
+        fig.subplots_adjust(left=0.16, right=0.97, top=0.98, bottom=0.32)
+        handles, labels = ax.get_legend_handles_labels()
+        fig.legend(handles, labels, loc="lower center", bbox_to_anchor=(0.5, 0.005), ncols=1, fontsize=7.0)
     return _finish(fig, save_to)
 
 
