@@ -58,7 +58,7 @@ from pathlib import Path
 from . import __version__
 from .errors import SedtempError
 
-__all__ = ["main", "build_parser"]
+__all__ = ["build_parser", "main"]
 
 _DEMO_OUTPUT = "sedtemp-demo"
 
@@ -416,7 +416,8 @@ def _cmd_init(args) -> int:
 
 
 def _cmd_fit(args) -> int:
-    from .errors import InputError, SedtempError as _Err
+    from .errors import InputError
+    from .errors import SedtempError as _Err
     from .pipeline import plot_source, process_chunk, t_eq_band
 
     wf, tab, map_catalog = _load(args.workflow)
@@ -481,5 +482,5 @@ def _error_text(err) -> str:
     lines = [x.strip() for x in str(err).splitlines() if x.strip()]
     if len(lines) <= 2:  # one problem: one line
         return " ".join(lines)
-    items = group_causes([x[2:] if x.startswith("- ") else x for x in lines[1:]])
+    items = group_causes([x.removeprefix("- ") for x in lines[1:]])
     return lines[0] + "".join(f"\n  - {x}" for x in items)

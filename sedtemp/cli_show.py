@@ -5,9 +5,16 @@ from __future__ import annotations
 import numpy as np
 
 from ._units import group_causes
-from .inspect_workflow import band_rows, format_band_table, physics_lines, resolved_toml, t_eq_range, time_estimate
+from .inspect_workflow import (
+    band_rows,
+    format_band_table,
+    physics_lines,
+    resolved_toml,
+    t_eq_range,
+    time_estimate,
+)
 
-__all__ = ["show", "source_report", "format_seconds"]
+__all__ = ["format_seconds", "show", "source_report"]
 
 #: Columns of the comparison stage that look like parameter summaries but are not fit parameters.
 _COMPARE_NAMES = {"T_eq", "ratio", "U_implied", "field_scale", "extra_power", "extra_power_solar",
@@ -64,9 +71,10 @@ def _time_lines(wf, mapped, n_timed):
         parts.append(f"{est['setup_s']:.2g} s set-up + {est['per_source_s']:.2g} s per source x {est['n_fit']}")
     if est["mcmc_per_source_s"] is not None:
         parts.append(f"{est['mcmc_per_source_s']:.2g} s per MCMC source x {est['n_mcmc']}")
-    return [f"about {format_seconds(est['wall_s'])} on {est['workers']} worker(s) "
+    line = (f"about {format_seconds(est['wall_s'])} on {est['workers']} worker(s) "
             f"({format_seconds(est['serial_s'])} on one: {'; '.join(parts)}), from timing {est['n_timed']} "
-            "source(s) now; per-source plots (one MCMC fit each) come on top"]
+            "source(s) now; per-source plots (one MCMC fit each) come on top")
+    return [line]
 
 
 def _params(row):

@@ -26,7 +26,7 @@ from pathlib import Path
 
 import astropy.units as u
 
-__all__ = ["template_text", "workflow_text", "guess_columns", "Guess", "BandGuess"]
+__all__ = ["BandGuess", "Guess", "guess_columns", "template_text", "workflow_text"]
 
 _ID_NAMES = ("source_id", "id", "name", "src", "source", "srcid", "object", "objname")
 _RA_NAMES = ("ra", "ra_deg", "raj2000", "ra_j2000", "ra_icrs")
@@ -35,7 +35,7 @@ _ERR_SUFFIXES = ("_err", "_error", "err", "_e", "_unc", "_sigma", "_sig")
 _ERR_PREFIXES = ("e_", "err_", "sigma_", "unc_")
 _LIMIT_SUFFIXES = ("_limit", "_lim", "_ul", "_upper")
 _FLUX_TYPE = u.Jy.physical_type
-_BAND_BLOCK = re.compile(r"^# One table per band.*?(?=^\[calibration\])", re.S | re.M)
+_BAND_BLOCK = re.compile(r"^# One table per band.*?(?=^\[calibration\])", re.DOTALL | re.MULTILINE)
 
 
 def template_text() -> str:
@@ -222,12 +222,13 @@ def _bands_toml(bands):
 
 def _set_line(text, key, value, *, uncomment=False):
     """Replace the value of the first ``key = ...`` line (or ``# key = ...`` with ``uncomment``)."""
-    pat = re.compile(rf"^(#\s*)?{re.escape(key)}\s*=\s*\S+(\s*#.*)?$", re.M)
+    pat = re.compile(rf"^(#\s*)?{re.escape(key)}\s*=\s*\S+(\s*#.*)?$", re.MULTILINE)
     for m in pat.finditer(text):
         if m.group(1) and not uncomment:
             continue
-        line = f'{key} = "{value}"'
-        return text[: m.start()] + line.ljust(26) + (m.group(2) or "") + text[m.end():]
+        line, comment = f'{key} = "{value}"', (m.group(2) or "").strip()
+        line = f"{line.ljust(25)} {comment}" if comment else line
+        return text[: m.start()] + line + text[m.end():]
     return text
 
 

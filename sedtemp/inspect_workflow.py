@@ -20,8 +20,17 @@ import numpy as np
 from ._units import did_you_mean
 from .errors import ConfigError
 
-__all__ = ["resolved_toml", "band_rows", "format_band_table", "physics_lines", "check_field_kinds",
-           "t_eq_range", "time_estimate", "line_of", "with_line"]
+__all__ = [
+    "band_rows",
+    "check_field_kinds",
+    "format_band_table",
+    "line_of",
+    "physics_lines",
+    "resolved_toml",
+    "t_eq_range",
+    "time_estimate",
+    "with_line",
+]
 
 _SECTIONS = ("run", "catalog", "model", "fit", "field", "compare", "output")
 
@@ -164,7 +173,7 @@ def with_line(wf, err: ConfigError) -> ConfigError:
     n = line_of(wf, rf"^\s*\[\[?\s*{re.escape(m.group(1))}\s*\]\]?")
     if n is None:
         return err
-    head, sep, rest = msg.partition(": ")
+    head, _, rest = msg.partition(": ")
     text = f"{head} line {n}: {rest}" if head == wf.source else f"{wf.source} line {n}: {msg}"
     new = ConfigError(text)
     new.__cause__ = err

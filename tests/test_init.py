@@ -7,8 +7,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-
 from conftest import invented_catalog
+
 from sedtemp.cli import main
 from sedtemp.config import load_workflow
 from sedtemp.init_workflow import guess_columns, template_text, workflow_text
@@ -97,7 +97,7 @@ def test_init_unreadable_catalogue(tmp_path, capsys):
 def test_workflow_text_keeps_comments_and_unset_columns_commented(tmp_path):
     cat = tmp_path / "c.ecsv"
     _table({"F250": None, "E250": None}).write(cat)
-    text, g = workflow_text(cat, workflow_path=tmp_path / "w.toml")
+    text, _ = workflow_text(cat, workflow_path=tmp_path / "w.toml")
     assert '# unit = "mJy"   # NO UNIT in the catalogue: uncomment and set the right one' in text
     assert text.startswith("# sedtemp workflow template") and "[calibration]" in text
     assert tomllib.loads(text)["bands"] == {"b250": {"flux": "F250", "error": "E250",

@@ -4,8 +4,14 @@ import astropy.units as u
 import numpy as np
 import pytest
 
-from sedtemp._units import (COMMON_UNITS, beam_solid_angle, did_you_mean, flux_density_si, group_causes,
-                            parse_unit)
+from sedtemp._units import (
+    COMMON_UNITS,
+    beam_solid_angle,
+    did_you_mean,
+    flux_density_si,
+    group_causes,
+    parse_unit,
+)
 from sedtemp.errors import InputError
 
 JY_SI = 1e-26  # 1 Jy = 1e-26 W m^-2 Hz^-1 (definition of the jansky)
