@@ -570,3 +570,17 @@ def test_source_figures_accept_fig_and_return_it(fit, name):
     fig = Figure()
     kw = {"n_draws": 50} if name == "sed_plot" else {}
     assert getattr(plots, name)(fit, fig=fig, **kw) is fig
+
+
+def test_comparison_skips_rows_without_a_flag(catalogue):
+    """A results file read back has masked cells for skipped sources: those rows are not drawn."""
+    from astropy.table import MaskedColumn
+
+    t = catalogue.copy()
+    t["flag"] = MaskedColumn([str(f) for f in t["flag"]], mask=[i == 2 for i in range(len(t))])
+    for c in ("T_median", "T_p16", "T_p84"):
+        t[c] = MaskedColumn(np.asarray(t[c], float), mask=[i == 2 for i in range(len(t))])
+    ax = plots.comparison_plot(t).axes[0]
+    drawn = sum(len(_line(ax, f"flag_{f}").get_xdata()) for f in plots.FLAG_STYLES
+                if any(line.get_gid() == f"flag_{f}" for line in ax.lines))
+    assert drawn == len(t) - 1
