@@ -287,7 +287,12 @@ def _cmd_demo(args) -> int:
             _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not written")
         wf = replace(wf, output=output)
         _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {out}")
-        res = _run_workflow(args, wf, tab, map_catalog, out, restart=args.restart)
+        try:
+            res = _run_workflow(args, wf, tab, map_catalog, out, restart=args.restart)
+        except SedtempError as err:  # the batch's advice names `sedtemp run`; here it is the demo
+            if "sedtemp run --restart" not in str(err):
+                raise
+            raise type(err)(str(err).replace("sedtemp run --restart", "sedtemp demo --restart")) from err
         truth = read_catalog(wf.path("demo_truth.ecsv"))
         _say(args, _truth_score(res, truth, wf.catalog["id_column"]))
     return 0

@@ -460,3 +460,16 @@ def test_init_check_run_in_a_subprocess(tmp_path):
     run = sedtemp("--quiet", "run", "my.toml", "--limit", "2")
     assert run.returncode == 0, run.stderr
     assert Table.read(tmp_path / "sedtemp-results" / "results.ecsv")["name"].tolist() == ["S000", "S001"]
+
+
+def test_demo_advice_names_the_demo_restart(monkeypatch, tmp_path, capsys):
+    from sedtemp import cli
+    from sedtemp.errors import ConfigError
+
+    def refusing(*args, **kwargs):
+        raise ConfigError("the folder holds another run; start afresh with `sedtemp run --restart`")
+
+    monkeypatch.setattr(cli, "_run_workflow", refusing)
+    assert main(["demo", "--sources", "2", "--output", str(tmp_path / "d"), "--quiet"]) == 1
+    assert capsys.readouterr().err == ("sedtemp demo: error: the folder holds another run; start afresh with "
+                                       "`sedtemp demo --restart`\n")
