@@ -35,6 +35,7 @@ _ERR_SUFFIXES = ("_err", "_error", "err", "_e", "_unc", "_sigma", "_sig")
 _ERR_PREFIXES = ("e_", "err_", "sigma_", "unc_")
 _LIMIT_SUFFIXES = ("_limit", "_lim", "_ul", "_upper")
 _FLUX_TYPE = u.Jy.physical_type
+_STAR_BLOCK = re.compile(r"^\[\[field\.components\]\][^\n]*heating star.*?(?=^\n|^\[)", re.S | re.M)
 _BAND_BLOCK = re.compile(r"^# One table per band.*?(?=^\[calibration\])", re.DOTALL | re.MULTILINE)
 
 
@@ -268,6 +269,10 @@ def workflow_text(catalog=None, *, workflow_path=None, table=None):
         text = _set_line(text, "dec_column", g.dec_column, uncomment=True)
     if g.bands:
         text = _BAND_BLOCK.sub(lambda _: _bands_toml(g.bands), text, count=1)
+    text = _STAR_BLOCK.sub(lambda m: "".join(f"# {x}" if x.strip() else x
+                                             for x in m.group(0).splitlines(keepends=True)), text, count=1)
     g.notes.append("[catalog] distance is the template's \"450 pc\": set yours (or distance_column)")
+    g.notes.append("[[field.components]]: the interstellar field (U = 1) and the CMB; the template's heating "
+                   "star is commented out: set it if your sources sit near one")
     return text, g
 

@@ -31,7 +31,7 @@ def test_every_bundled_file_is_known_and_loads():
 def test_template_parses_as_a_workflow():
     data = tomllib.loads((DATA / "template.toml").read_text(encoding="utf-8"))
     wf = parse_workflow(data, source="template.toml")
-    assert wf.catalog["id_column"] == "source_id" and [c["kind"] for c in wf.field["components"]] == ["isrf", "cmb"]
+    assert wf.catalog["id_column"] == "source_id" and [c["kind"] for c in wf.field["components"]] == ["isrf", "star", "cmb"]
 
 
 @pytest.mark.parametrize("name", ["k70", "k110", "k170", "k250", "k350", "k500"])

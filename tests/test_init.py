@@ -84,6 +84,7 @@ def test_init_from_catalogue_passes_check(tmp_path, capsys):
     assert wf.catalog["path"] == "../data/cat.ecsv" and wf.catalog["id_column"] == "name"
     assert list(wf.bands) == ["b70", "b160", "b250", "b350", "b500"]
     assert wf.bands["b160"]["tophat"] == {"center": "160 um", "width": 0.3}
+    assert [c["kind"] for c in wf.field["components"]] == ["isrf", "cmb"]  # the template's star left out
     assert main(["check", str(wf_path)]) == 0
     assert "mine.toml: workflow valid; catalogue '../data/cat.ecsv': 6 source(s), 5 band(s)" in capsys.readouterr().out
 
