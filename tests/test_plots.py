@@ -6,6 +6,7 @@ the plotted numbers) against a value computed here without the plotting code.
 
 import ast
 import dataclasses
+import importlib
 import inspect
 import types
 import warnings
@@ -446,7 +447,11 @@ def test_no_pyplot_state(fit, catalogue):
     plots.corner_plot(fit)
     plots.sed_plot(fit, n_draws=50)
     assert plt.get_fignums() == []
-    src = inspect.getsource(plots)
+    import pkgutil
+
+    src = "\n".join(inspect.getsource(importlib.import_module(f"sedtemp.plots.{m.name}"))
+                    for m in pkgutil.iter_modules(plots.__path__)) + inspect.getsource(plots)
+    assert "def corner_plot" in src and "def population_plot" in src  # every module of the package
     imported = {a.name for node in ast.walk(ast.parse(src)) if isinstance(node, (ast.Import, ast.ImportFrom))
                 for a in node.names} | {node.module for node in ast.walk(ast.parse(src))
                                         if isinstance(node, ast.ImportFrom)}
