@@ -2,9 +2,10 @@
 
 The scenario is made up for the demo, and every number in it is ours:
 
-* the *Varnel cloud*, a fictional star-forming cloud at 480 pc;
+* the *Varnel cloud*, a fictional star-forming cloud at 530 pc;
 * *Varnel-1*, a fictional hot star (T_eff = 33 000 K, L = 1.2e5 L_sun) at
-  RA = 84.30 deg, Dec = -3.10 deg, heating the cloud;
+  RA = 152.40 deg, Dec = +31.70 deg (an unremarkable, invented place on the
+  sky, away from any known star-forming region), heating the cloud;
 * 300 dust sources spread over 1-8 pc (projected) around the star, all in
   the plane of the sky through the star, so projected separation = true
   separation;
@@ -40,8 +41,8 @@ from astropy.table import Table
 
 SEED = 20240611
 N_SOURCES = 300
-DISTANCE_PC = 480.0
-STAR = {"teff_K": 33000.0, "luminosity_Lsun": 1.2e5, "ra_deg": 84.30, "dec_deg": -3.10}
+DISTANCE_PC = 530.0
+STAR = {"teff_K": 33000.0, "luminosity_Lsun": 1.2e5, "ra_deg": 152.40, "dec_deg": 31.70}
 #: name -> (centre in um, fractional width dnu/nu, calibration group)
 BANDS = {"k70": (70.0, 0.35, "short"), "k110": (110.0, 0.35, "short"), "k170": (170.0, 0.35, "short"),
          "k250": (250.0, 0.30, "long"), "k350": (350.0, 0.30, "long"), "k500": (500.0, 0.30, "long")}
@@ -61,7 +62,7 @@ chunk_size = 25
 [catalog]
 path = "demo_catalog.ecsv"
 id_column = "src"
-distance = "480 pc"
+distance = "530 pc"
 ra_column = "ra"
 dec_column = "dec"
 
@@ -108,7 +109,7 @@ U = 1.0
 kind = "star"
 teff = "33000 K"
 luminosity = "1.2e5 solLum"
-position = {{ ra = 84.30, dec = -3.10 }}
+position = {{ ra = 152.40, dec = 31.70 }}
 
 [[field.components]]
 kind = "cmb"

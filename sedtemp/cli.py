@@ -2,10 +2,26 @@
 
 Subcommands::
 
-    sedtemp run WORKFLOW [--output DIR] [--restart]   fit -> predict -> compare a catalogue
-    sedtemp check WORKFLOW                              validate workflow and catalogue, no fitting
-    sedtemp demo [--output DIR] [--sources N]           the bundled invented scenario, end to end
+    sedtemp init WORKFLOW [--catalog CAT] [--force]     write a commented workflow (pre-filled from CAT)
+    sedtemp check WORKFLOW [--show]                     validate workflow and catalogue; --show: dry run
+    sedtemp run WORKFLOW [--output DIR] [--restart] [--limit N] [--ids A,B]
+                                                        fit -> predict -> compare a catalogue
+    sedtemp fit WORKFLOW --source ID [--plots DIR]      one source: summary, prediction, verdict
+    sedtemp demo [--output DIR] [--sources N] [--restart]  the bundled invented scenario, end to end
     sedtemp plot RESULTS [--source ID] [--output DIR]   plots from a finished run
+
+``init`` writes the template bundled with sedtemp (every key, its default and
+a comment); with ``--catalog`` it also fills ``[catalog]`` and one
+``[bands.NAME]`` table per flux/error column pair it recognises, and says what
+it guessed and what it could not (:mod:`sedtemp.init_workflow`).
+
+``check --show`` prints the resolved workflow as TOML, the band table, the
+resolved model, opacity, priors and field, the range of T_eq over (a sample
+of) the catalogue and a run-time estimate from timing a few sources
+(:mod:`sedtemp.inspect_workflow`).
+
+``run --ids A,B`` and ``--limit N`` run a subset of the catalogue (the listed
+ids, then the first N).
 
 ``run`` (and ``demo``) write into the output folder the results table, the
 run report, the draws file (``[output] keep_draws``), the catalogue plots
@@ -24,9 +40,10 @@ refuses if that workflow has changed since the run.
 optional packages the workflow needs are installed (h5py for
 ``keep_draws``, Dask or mpi4py for those executors).
 
-Global options: ``--quiet`` (no progress bar or summary), ``--debug`` (show
-the traceback of an error). Errors print one line to stderr and the command
-returns non-zero.
+Global options, before or after the subcommand: ``--quiet`` (no progress bar
+or summary), ``--debug`` (show the traceback of an error). Errors print one
+line to stderr (a list of problems: one line each, repeated ones grouped) and
+the command returns non-zero; Ctrl-C prints one line and returns 130.
 """
 
 from __future__ import annotations
@@ -41,30 +58,57 @@ from pathlib import Path
 from . import __version__
 from .errors import SedtempError
 
-__all__ = ["main", "build_parser"]
+__all__ = ["build_parser", "main"]
 
 _DEMO_OUTPUT = "sedtemp-demo"
+
+
+QUICK_START = """\
+quick start:
+  sedtemp init my.toml --catalog my_catalog.ecsv   write a commented workflow for your catalogue
+  sedtemp check my.toml --show                      see what it will do (bands, priors, T_eq, time)
+  sedtemp run my.toml                               fit -> predict -> compare every source"""
+
+
+def _global_options(parser, *, default):
+    """--quiet and --debug; on the subcommands with SUPPRESS so they do not reset the global value."""
+    parser.add_argument("--quiet", action="store_true", default=default, help="no progress bar or summary")
+    parser.add_argument("--debug", action="store_true", default=default, help="show tracebacks of errors")
 
 
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``sedtemp`` command."""
     p = argparse.ArgumentParser(prog="sedtemp", description=(
         "Dust temperature posteriors from far-IR/submm photometry, compared with "
-        "radiative equilibrium in a modelled radiation field."))
+        "radiative equilibrium in a modelled radiation field."), epilog=QUICK_START,
+        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--version", action="version", version=f"sedtemp {__version__}")
+    _global_options(p, default=False)
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--quiet", action="store_true", help="no progress bar or summary")
-    common.add_argument("--debug", action="store_true", help="show tracebacks of errors")
+    _global_options(common, default=argparse.SUPPRESS)
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    i = sub.add_parser("init", parents=[common], help="write a commented workflow file")
+    i.add_argument("workflow", type=Path, help="workflow TOML file to write")
+    i.add_argument("--catalog", type=Path, metavar="CAT",
+                   help="catalogue (ECSV, FITS, CSV with a units row): fill [catalog] and [bands] from it")
+    i.add_argument("--force", action="store_true", help="overwrite an existing file")
+    c = sub.add_parser("check", parents=[common], help="validate a workflow and its catalogue")
+    c.add_argument("workflow", type=Path)
+    c.add_argument("--show", action="store_true", help="dry run: resolved workflow, bands, priors, "
+                   "field, T_eq range and an estimated run time")
     r = sub.add_parser("run", parents=[common], help="run a workflow over its catalogue")
     r.add_argument("workflow", type=Path, help="workflow TOML file")
     r.add_argument("--output", type=Path, help="output folder (default: [output] directory)")
     r.add_argument("--restart", action="store_true", help="discard checkpoints of an earlier run")
-    c = sub.add_parser("check", parents=[common], help="validate a workflow and its catalogue")
-    c.add_argument("workflow", type=Path)
+    _subset_options(r)
+    f = sub.add_parser("fit", parents=[common], help="fit one source of a workflow and print its verdict")
+    f.add_argument("workflow", type=Path)
+    f.add_argument("--source", required=True, metavar="ID", help="id of the source (its [catalog] id_column)")
+    f.add_argument("--plots", type=Path, metavar="DIR", help="also write its corner, SED and trace plots here")
     d = sub.add_parser("demo", parents=[common], help="run the bundled demo scenario")
     d.add_argument("--output", type=Path, default=Path(_DEMO_OUTPUT), help=f"folder (default {_DEMO_OUTPUT})")
     d.add_argument("--sources", type=int, default=None, help="use only the first N sources")
+    d.add_argument("--restart", action="store_true", help="discard checkpoints of an earlier demo run")
     pl = sub.add_parser("plot", parents=[common], help="plots from a results table")
     pl.add_argument("results", type=Path, help="results file of a finished run")
     pl.add_argument("--source", metavar="ID", help="corner, SED and trace plots of this source "
@@ -74,6 +118,11 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _subset_options(parser):
+    parser.add_argument("--limit", type=int, metavar="N", help="only the first N sources (after --ids)")
+    parser.add_argument("--ids", metavar="A,B,...", help="only these source ids (comma-separated)")
+
+
 def _say(args, text):
     if not args.quiet:
         print(text)
@@ -81,11 +130,63 @@ def _say(args, text):
 
 def _load(path):
     from .catalog import map_catalog, read_catalog
-    from .config import load_workflow
 
-    wf = load_workflow(path)
+    wf = _workflow(path)
     tab = read_catalog(wf.path(wf.catalog["path"]), format=wf.catalog["format"])
     return wf, tab, map_catalog
+
+
+def _workflow(path):
+    """Load a workflow and build what the schema alone does not check; a problem names its line."""
+    import astropy.units as u
+
+    from .config import load_workflow
+    from .errors import ConfigError
+    from .inspect_workflow import check_field_kinds, with_line
+
+    wf = load_workflow(path)
+    try:
+        check_field_kinds(wf)  # before the catalogue: a typo in a kind is the workflow's problem
+        wf.bandset()
+        wf.build_prior()
+        wf.opacity()
+        wf.build_model(distance=1.0 * u.kpc) if wf.model["amplitude"] == "mass" else wf.build_model()
+    except ConfigError as err:
+        raise with_line(wf, err) from err
+    return wf
+
+
+def _subset(tab, wf, *, ids=None, limit=None):
+    """The rows of ``tab`` with the given ids (catalogue order), then the first ``limit``."""
+    from ._units import did_you_mean
+    from .catalog import source_key
+    from .errors import CatalogError, InputError
+
+    if ids is not None:
+        wanted = [x.strip() for x in str(ids).split(",") if x.strip()]
+        if not wanted:
+            raise InputError(f"--ids: no id given in {ids!r}; write e.g. --ids S001,S002")
+        idc = wf.catalog["id_column"]
+        if idc not in tab.colnames:
+            raise CatalogError(f"[catalog] id_column: column {idc!r} is not in the catalogue "
+                               f"{wf.catalog['path']!r}")
+        keys = [source_key(v) for v in tab[idc]]
+        pos = {}
+        for i, k in enumerate(keys):
+            pos.setdefault(k, i)
+        unknown = [w for w in wanted if w not in pos]
+        if unknown:
+            shown = ", ".join(repr(w) for w in unknown[:5]) + (f" and {len(unknown) - 5} more" if len(unknown) > 5 else "")
+            hint = did_you_mean(unknown[0], keys[:20000]) if keys else ""
+            raise CatalogError(f"source id(s) {shown} not in the catalogue {wf.catalog['path']!r} "
+                               f"(column {idc!r}){hint}; ids look like {keys[0]!r}" if keys else
+                               f"the catalogue {wf.catalog['path']!r} has no sources")
+        tab = tab[sorted({pos[w] for w in wanted})]
+    if limit is not None:
+        if limit < 1:
+            raise InputError(f"--limit must be >= 1, got {limit}")
+        tab = tab[:limit]
+    return tab
 
 
 def _cmd_check(args) -> int:
@@ -93,7 +194,6 @@ def _cmd_check(args) -> int:
 
     t0 = time.perf_counter()
     wf, tab, map_catalog = _load(args.workflow)
-    wf.bandset()
     check_optional_packages(wf)
     mapped = map_catalog(tab, wf)
     n_skip = int((mapped.skip_reason != "").sum())
@@ -103,6 +203,10 @@ def _cmd_check(args) -> int:
     for key, reason in zip(mapped.keys, mapped.skip_reason):
         if reason:
             _say(args, f"  skip {key}: {reason}")
+    if args.show:
+        from .cli_show import show
+
+        print(show(wf, tab, mapped))
     return 0
 
 
@@ -149,6 +253,7 @@ def _summary(args, res, out, wf):
 
 def _cmd_run(args) -> int:
     wf, tab, map_catalog = _load(args.workflow)
+    tab = _subset(tab, wf, ids=args.ids, limit=args.limit)
     out = args.output if args.output is not None else wf.output_dir
     _run_workflow(args, wf, tab, map_catalog, Path(out), restart=args.restart)
     return 0
@@ -182,7 +287,12 @@ def _cmd_demo(args) -> int:
             _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not written")
         wf = replace(wf, output=output)
         _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {out}")
-        res = _run_workflow(args, wf, tab, map_catalog, out)
+        try:
+            res = _run_workflow(args, wf, tab, map_catalog, out, restart=args.restart)
+        except SedtempError as err:  # the batch's advice names `sedtemp run`; here it is the demo
+            if "sedtemp run --restart" not in str(err):
+                raise
+            raise type(err)(str(err).replace("sedtemp run --restart", "sedtemp demo --restart")) from err
         truth = read_catalog(wf.path("demo_truth.ecsv"))
         _say(args, _truth_score(res, truth, wf.catalog["id_column"]))
     return 0
@@ -286,7 +396,55 @@ def _plot_source(args, res, directory):
     return plot_source(wf, mapped, 0, directory, T_eq=t_eq_band(row))
 
 
-_COMMANDS = {"run": _cmd_run, "check": _cmd_check, "demo": _cmd_demo, "plot": _cmd_plot}
+def _cmd_init(args) -> int:
+    from ._io import atomic_write_text
+    from .errors import InputError
+    from .init_workflow import workflow_text
+
+    path = args.workflow
+    if path.exists() and not args.force:
+        raise InputError(f"{str(path)!r} already exists; choose another name or add --force to overwrite it")
+    text, guess = workflow_text(args.catalog, workflow_path=path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    atomic_write_text(path, text)
+    _say(args, f"wrote {path}: the commented workflow template" + (f", filled from {args.catalog}" if guess else ""))
+    if guess is not None:
+        _say(args, "guessed (check these):")
+        for note in guess.notes:
+            _say(args, f"  {note}")
+        if guess.problems:
+            _say(args, "could not guess (fill these in):")
+            for prob in guess.problems:
+                _say(args, f"  {prob}")
+    _say(args, f"next: sedtemp check {path} --show")
+    return 0
+
+
+def _cmd_fit(args) -> int:
+    from .errors import InputError
+    from .errors import SedtempError as _Err
+    from .pipeline import plot_source, process_chunk, t_eq_band
+
+    wf, tab, map_catalog = _load(args.workflow)
+    mapped = map_catalog(_subset(tab, wf, ids=args.source), wf)  # map only this row
+    if mapped.skip_reason[0]:
+        raise InputError(f"source {args.source!r} is skipped by this workflow ({mapped.skip_reason[0]}); "
+                         "there is nothing to fit")
+    row = process_chunk(wf, mapped, n_keep=0)[0]
+    if row["status"] != "ok":
+        raise _Err(f"source {args.source!r} failed: {row['reason']}")
+    from .cli_show import source_report
+
+    print(source_report(row, wf))
+    if args.plots is not None:
+        paths = plot_source(wf, mapped, 0, args.plots, T_eq=t_eq_band(row))
+        _say(args, "plots:   " + ", ".join(str(p) for p in paths if p.suffix == ".png"))
+    return 0
+
+
+_COMMANDS = {"init": _cmd_init, "check": _cmd_check, "run": _cmd_run, "fit": _cmd_fit, "demo": _cmd_demo,
+             "plot": _cmd_plot}
+_RESUMABLE = ("run", "demo")
 
 
 def main(argv=None) -> int:
@@ -300,8 +458,9 @@ def main(argv=None) -> int:
     Returns
     -------
     int
-        0 on success, 1 on an error (one line on stderr; ``--debug`` adds the
-        traceback), 2 on a usage error (from argparse).
+        0 on success, 1 on an error (one line on stderr, or one line per
+        problem of a list; ``--debug`` adds the traceback), 2 on a usage
+        error (from argparse), 130 on Ctrl-C (one line).
     """
     parser = build_parser()
     try:
@@ -313,16 +472,20 @@ def main(argv=None) -> int:
     except (SedtempError, ImportError, OSError) as err:
         if args.debug:
             traceback.print_exc()
-        print(f"sedtemp {args.command}: error: {_one_line(err)}", file=sys.stderr)
+        print(f"sedtemp {args.command}: error: {_error_text(err)}", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
-        print("sedtemp: interrupted; run the same command again to resume", file=sys.stderr)
+        again = "; run the same command again to resume" if args.command in _RESUMABLE else ""
+        print(f"sedtemp {args.command}: interrupted{again}", file=sys.stderr)
         return 130
 
 
-def _one_line(err) -> str:
-    text = str(err)
-    lines = text.splitlines()
-    if len(lines) > 1:  # a validation report: keep it, but as one line per problem is clearer
-        return lines[0] + " " + " ".join(x.strip() for x in lines[1:])
-    return text
+def _error_text(err) -> str:
+    """The message of ``err``: one line, or a head line and one line per problem, repeats grouped."""
+    from ._units import group_causes
+
+    lines = [x.strip() for x in str(err).splitlines() if x.strip()]
+    if len(lines) <= 2:  # one problem: one line
+        return " ".join(lines)
+    items = group_causes([x.removeprefix("- ") for x in lines[1:]])
+    return lines[0] + "".join(f"\n  - {x}" for x in items)

@@ -253,3 +253,223 @@ def test_keep_draws_without_h5py_refused_at_check_and_run(case, monkeypatch, cap
     assert main(["run", str(wf), "--quiet"]) == 1
     assert msg in capsys.readouterr().err
     assert not (tmp / "out").exists()  # refused before any fitting
+
+
+# ------------------------------------------------ global options, help, Ctrl-C
+def test_global_options_before_or_after_the_subcommand(case, capsys):
+    tmp, wf = case
+    for argv in (["--quiet", "check", str(wf)], ["check", str(wf), "--quiet"], ["check", "--quiet", str(wf)]):
+        assert main(argv) == 0, argv
+        assert capsys.readouterr().out == "", argv
+    wf.write_text(wf.read_text().replace("[fit]", "[fit]\nmethdo = 'grid'"))
+    assert main(["--debug", "check", str(wf)]) == 1
+    assert "Traceback (most recent call last)" in capsys.readouterr().err
+    assert main(["check", str(wf), "--debug"]) == 1
+    assert "Traceback (most recent call last)" in capsys.readouterr().err
+
+
+def test_help_ends_with_a_three_line_quick_start(capsys):
+    assert main(["--help"]) == 0
+    lines = capsys.readouterr().out.rstrip().splitlines()
+    assert lines[-4] == "quick start:"
+    assert [x.split()[:2] for x in lines[-3:]] == [["sedtemp", "init"], ["sedtemp", "check"], ["sedtemp", "run"]]
+    assert "--show" in lines[-2] and "--catalog" in lines[-3]
+
+
+@pytest.mark.parametrize("command, tail", [("check", ""), ("run", "; run the same command again to resume")])
+def test_ctrl_c_prints_one_line(case, monkeypatch, capsys, command, tail):
+    from sedtemp import cli
+
+    def interrupted(args):
+        raise KeyboardInterrupt
+
+    monkeypatch.setitem(cli._COMMANDS, command, interrupted)
+    _, wf = case
+    assert main([command, str(wf)]) == 130
+    captured = capsys.readouterr()
+    assert captured.err == f"sedtemp {command}: interrupted{tail}\n" and "Traceback" not in captured.err
+
+
+def test_demo_accepts_restart(monkeypatch, tmp_path, capsys):
+    """`sedtemp demo --restart` passes restart=True to the run (the demo's own message names --restart)."""
+    from sedtemp import cli
+    from sedtemp.errors import SedtempError
+
+    seen = {}
+
+    def recording(args, wf, tab, map_catalog, out, *, restart=False):
+        seen["restart"], seen["n"] = restart, len(tab)
+        raise SedtempError("stopped by the test")
+
+    monkeypatch.setattr(cli, "_run_workflow", recording)
+    assert main(["demo", "--sources", "4", "--output", str(tmp_path / "d"), "--restart", "--quiet"]) == 1
+    assert seen == {"restart": True, "n": 4}
+    assert "sedtemp demo: error: stopped by the test" in capsys.readouterr().err
+    assert main(["demo", "--sources", "4", "--output", str(tmp_path / "d"), "--quiet"]) == 1
+    assert seen["restart"] is False
+
+
+def test_many_problems_one_line_each_repeats_grouped(case, capsys):
+    tmp, wf = case
+    t = Table.read(tmp / "cat.ecsv")
+    t["E160"][3] = -1.0
+    t["E250"][4] = -1.0
+    t.write(tmp / "cat.ecsv", overwrite=True)
+    assert main(["check", str(wf)]) == 1
+    lines = capsys.readouterr().err.splitlines()
+    assert lines == ["sedtemp check: error: catalogue 'cat.ecsv' has 2 problem(s):",
+                     "  - band 'b160': error is not positive for 1 source(s): 'S003'",
+                     "  - band 'b250': error is not positive for 1 source(s): 'S004'"]
+
+
+def test_error_text_groups_repeated_causes():
+    from sedtemp.cli import _error_text
+    from sedtemp.errors import CatalogError
+
+    err = CatalogError("catalogue 'c' has 3 problem(s):\n  - unit 'mjy' is not a unit\n  - unit 'mjy' is not a unit"
+                       "\n  - column 'x' is missing")
+    assert _error_text(err) == ("catalogue 'c' has 3 problem(s):\n  - unit 'mjy' is not a unit (2 times)\n"
+                                "  - column 'x' is missing")
+
+
+# ------------------------------------------------------------ run subsets
+def test_run_ids_and_limit(case, capsys):
+    tmp, wf = case
+    assert main(["run", str(wf), "--ids", "S007, S001,S004", "--quiet", "--output", str(tmp / "ids")]) == 0
+    assert Table.read(tmp / "ids" / "results.ecsv")["name"].tolist() == ["S001", "S004", "S007"]  # catalogue order
+    assert main(["run", str(wf), "--limit", "3", "--quiet", "--output", str(tmp / "lim")]) == 0
+    assert Table.read(tmp / "lim" / "results.ecsv")["name"].tolist() == ["S000", "S001", "S002"]
+    assert main(["run", str(wf), "--ids", "S009,S004", "--limit", "1", "--quiet", "--output", str(tmp / "both")]) == 0
+    assert Table.read(tmp / "both" / "results.ecsv")["name"].tolist() == ["S004"]
+
+
+def test_run_unknown_id_is_an_error_naming_it(case, capsys):
+    tmp, wf = case
+    assert main(["run", str(wf), "--ids", "S001,S01,Q7"]) == 1
+    err = capsys.readouterr().err
+    assert ("sedtemp run: error: source id(s) 'S01', 'Q7' not in the catalogue 'cat.ecsv' (column 'name') "
+            "(did you mean 'S001'" in err)
+    assert main(["run", str(wf), "--limit", "0"]) == 1
+    assert "--limit must be >= 1, got 0" in capsys.readouterr().err
+    assert not (tmp / "out").exists()
+
+
+# ------------------------------------------------------------ fit one source
+def test_fit_one_source_prints_summary_prediction_and_verdict(finished, tmp_path, capsys):
+    results, wf = finished
+    row = Table.read(results)[3]
+    assert main(["fit", str(wf), "--source", "S003", "--quiet"]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[0] == "source S003: grid fit, 5 band(s) used"
+    table = {x.split()[0]: x.split() for x in out[1:5]}
+    assert table["parameter"][:2] == ["parameter", "median"]
+    # the same numbers as the batch run's row (same seed, same grid), to the 4 digits printed
+    assert table["T"][1] == f"{row['T_median']:.4g}"
+    assert table["T"][2:4] == [f"[{row['T_p16']:.4g},", f"{row['T_p84']:.4g}]"] and table["T"][-1] == "K"
+    assert table["beta"][1] == f"{row['beta_median']:.4g}"
+    assert table["log10_mass"][1] == f"{row['log10_mass_median']:.4g}"
+    text = "\n".join(out)
+    assert f"chi2 = {row['chi2_map']:.3g} for {int(row['dof'])} dof" in text
+    assert f"T_eq (radiative equilibrium) = {row['T_eq_median']:.4g} K" in text
+    assert f"comparison flag: {row['flag']}" in text and f"verdict: {row['verdict']}" in text
+
+
+def test_fit_one_source_errors_and_plots(finished, tmp_path, capsys):
+    _, wf = finished
+    assert main(["fit", str(wf), "--source", "S999"]) == 1
+    assert "sedtemp fit: error: source id(s) 'S999' not in the catalogue 'cat.ecsv'" in capsys.readouterr().err
+    assert main(["fit", str(wf)]) == 2  # --source is required
+    assert "the following arguments are required: --source" in capsys.readouterr().err
+    assert main(["fit", str(wf), "--source", "S002", "--plots", str(tmp_path / "p"), "--quiet"]) == 0
+    assert sorted(p.name for p in (tmp_path / "p").glob("*.png")) == ["S002_corner.png", "S002_sed.png",
+                                                                      "S002_trace.png"]
+
+
+# --------------------------------------------------------------- check --show
+def test_check_show_is_a_dry_run(case, capsys):
+    import tomllib
+
+    from sedtemp.config import load_workflow, parse_workflow
+    from sedtemp.equilibrium import equilibrium_temperature
+    from sedtemp.radiation import CMB, ISRF
+
+    tmp, wf = case
+    wf.write_text(_workflow_text(extra=FIELD + '[[field.components]]\nkind = "cmb"\n'))
+    assert main(["check", str(wf), "--show", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    toml_text = out.split("== resolved workflow ==\n", 1)[1].split("== bands ==", 1)[0]
+    back = parse_workflow(tomllib.loads(toml_text), base_dir=tmp)
+    orig = load_workflow(wf)
+    for sec in ("run", "catalog", "bands", "model", "priors", "fit", "field", "compare", "output"):
+        assert getattr(back, sec) == getattr(orig, sec), sec  # every default, as sedtemp resolved it
+    assert "b250  F250  E250   -      mJy   250 um  none" in out
+    assert "prior T: Uniform(5, 60) (workflow)" in out and "prior beta:" in out and "(model default)" in out
+    assert "field: kind=isrf, U=1.0; kind=cmb; A_V 0.0, uncertainty 0%" in out
+    # T_eq of the ISRF (U = 1) + CMB at the opacity's own beta: the same for every source
+    kappa = orig.opacity()
+    t_eq = equilibrium_temperature(ISRF(1.0) + CMB(), kappa, beta=kappa.beta).to_value(u.K)
+    assert (f"T_eq at beta = {kappa.beta:g}: {t_eq:.1f} to {t_eq:.1f} K (median {t_eq:.1f} K) "
+            "over all of 10 source(s)") in out
+    est = out.split("== estimated run time ==\n", 1)[1]
+    assert est.startswith("about ") and "from timing 4 source(s) now" in est and "x 10" in est
+
+
+def test_unknown_field_kind_is_a_workflow_problem_with_its_line(case, capsys):
+    _, wf = case
+    text = _workflow_text(extra=FIELD.replace('"isrf"', '"isfr"'))
+    wf.write_text(text)
+    line = text.splitlines().index('kind = "isfr"') + 1
+    assert main(["check", str(wf)]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith(f"sedtemp check: error: wf.toml line {line}: [[field.components]] 1: unknown field "
+                          "kind 'isfr' (did you mean 'isrf'?)")
+    assert "source" not in err.split("known kinds")[0] and "S000" not in err
+
+
+def test_builder_errors_name_the_workflow_line(case, capsys):
+    _, wf = case
+    text = _workflow_text().replace('kind = "uniform"', 'kind = "uniformm"')
+    wf.write_text(text)
+    line = text.splitlines().index("[priors.T]") + 1
+    assert main(["check", str(wf)]) == 1
+    assert (f"sedtemp check: error: wf.toml line {line}: [priors.T] kind must be one of"
+            in capsys.readouterr().err)
+
+
+# ------------------------------------------------------ init, in a subprocess
+def test_init_check_run_in_a_subprocess(tmp_path):
+    """The README walk-through: init from a catalogue, check --show, run; `python -m sedtemp`."""
+    _catalog(5).write(tmp_path / "cat.ecsv")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(p for p in sys.path if p)}
+
+    def sedtemp(*argv):
+        return subprocess.run([sys.executable, "-m", "sedtemp", *argv], capture_output=True, text=True,
+                              timeout=300, cwd=tmp_path, env=env)
+
+    init = sedtemp("init", "my.toml", "--catalog", "cat.ecsv")
+    assert init.returncode == 0, init.stderr
+    assert "band b250: flux 'F250', error 'E250', unit mJy, centre 250 um (from the column name)" in init.stdout
+    text = (tmp_path / "my.toml").read_text()
+    text = text.replace('distance = "450 pc"', 'distance = "400 pc"').replace("executor = \"process\"",
+                                                                               "executor = \"serial\"")
+    text = text.replace('source_plots = "flagged"', 'source_plots = "none"')
+    (tmp_path / "my.toml").write_text(text)
+    check = sedtemp("check", "my.toml", "--show")
+    assert check.returncode == 0, check.stderr
+    assert "my.toml: workflow valid; catalogue 'cat.ecsv': 5 source(s), 5 band(s), 0 to be skipped" in check.stdout
+    run = sedtemp("--quiet", "run", "my.toml", "--limit", "2")
+    assert run.returncode == 0, run.stderr
+    assert Table.read(tmp_path / "sedtemp-results" / "results.ecsv")["name"].tolist() == ["S000", "S001"]
+
+
+def test_demo_advice_names_the_demo_restart(monkeypatch, tmp_path, capsys):
+    from sedtemp import cli
+    from sedtemp.errors import ConfigError
+
+    def refusing(*args, **kwargs):
+        raise ConfigError("the folder holds another run; start afresh with `sedtemp run --restart`")
+
+    monkeypatch.setattr(cli, "_run_workflow", refusing)
+    assert main(["demo", "--sources", "2", "--output", str(tmp_path / "d"), "--quiet"]) == 1
+    assert capsys.readouterr().err == ("sedtemp demo: error: the folder holds another run; start afresh with "
+                                       "`sedtemp demo --restart`\n")

@@ -6,6 +6,7 @@ the plotted numbers) against a value computed here without the plotting code.
 
 import ast
 import dataclasses
+import importlib
 import inspect
 import types
 import warnings
@@ -274,9 +275,21 @@ def test_comparison_points_limits_and_legend(catalogue):
         rows = np.asarray(catalogue["flag"]) == flag
         np.testing.assert_array_equal(pts.get_xdata(), np.asarray(catalogue["T_eq_median"])[rows])
         np.testing.assert_array_equal(pts.get_ydata(), np.asarray(catalogue["T_median"])[rows])
-    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert ax.get_legend() is None  # the legend is the figure's, below the axes
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]
     assert legend == ["equal temperatures (1:1)"] + [s[2] for s in plots.FLAG_STYLES.values()]
     assert _non_white_fraction(fig) > 0.02
+
+
+def test_comparison_legend_is_off_the_data(catalogue):
+    """The legend box and the axes box do not overlap (in display pixels, after drawing)."""
+    fig = plots.comparison_plot(catalogue)
+    fig.canvas.draw()
+    leg = fig.legends[0].get_window_extent()
+    ax = fig.axes[0].get_window_extent()
+    assert leg.y1 <= ax.y0 and not leg.overlaps(ax)
+    fig_box = fig.bbox
+    assert leg.x0 >= fig_box.x0 and leg.x1 <= fig_box.x1 and leg.y0 >= fig_box.y0  # inside the figure
 
 
 def test_comparison_converts_units(catalogue):
@@ -434,7 +447,11 @@ def test_no_pyplot_state(fit, catalogue):
     plots.corner_plot(fit)
     plots.sed_plot(fit, n_draws=50)
     assert plt.get_fignums() == []
-    src = inspect.getsource(plots)
+    import pkgutil
+
+    src = "\n".join(inspect.getsource(importlib.import_module(f"sedtemp.plots.{m.name}"))
+                    for m in pkgutil.iter_modules(plots.__path__)) + inspect.getsource(plots)
+    assert "def corner_plot" in src and "def population_plot" in src  # every module of the package
     imported = {a.name for node in ast.walk(ast.parse(src)) if isinstance(node, (ast.Import, ast.ImportFrom))
                 for a in node.names} | {node.module for node in ast.walk(ast.parse(src))
                                         if isinstance(node, ast.ImportFrom)}
@@ -518,3 +535,57 @@ def test_remaining_error_messages(fit, catalogue):
         plots.population_plot(no_id, draws={"src0": (np.ones(20), np.ones(20))})
     with pytest.raises(InputError, match=r"draws: the T and beta draws of a source are constant"):
         plots.population_plot(catalogue, draws={"src0": (np.full(20, 18.0), np.arange(20.0))})
+
+
+# ------------------------------------------------------------ corner options
+def _diag_bins(fig, k):
+    """Number of histogram bins drawn on the first diagonal panel of a k x k corner plot."""
+    ax = fig.axes[0]
+    patch = ax.patches[0] if ax.patches else None
+    if patch is not None:  # corner draws histtype="step": one polygon with 2 vertices per bin edge
+        return (len(patch.get_xy()) - 2) // 2
+    raise AssertionError("no histogram drawn")
+
+
+def test_corner_options_are_passed_to_corner(fit):
+    k = len(fit.param_names)
+    default = plots.corner_plot(fit)
+    assert _diag_bins(default, k) == 30  # our default, bins=30
+    more = plots.corner_plot(fit, corner_options={"bins": 12, "show_titles": True, "title_fmt": ".1f"})
+    assert _diag_bins(more, k) == 12
+    titles = [more.axes[i * (k + 1)].get_title() for i in range(k)]
+    assert all(t for t in titles)  # show_titles: one title per diagonal panel
+    import matplotlib.pyplot as plt  # only to inspect its figure registry
+
+    assert plt.get_fignums() == []
+
+
+def test_corner_options_errors(fit):
+    with pytest.raises(InputError, match=r"corner_options must be a mapping of corner.corner arguments, got list"):
+        plots.corner_plot(fit, corner_options=[("bins", 3)])
+    with pytest.raises(InputError, match=r"corner_options: 'fig' is set by corner_plot itself"):
+        plots.corner_plot(fit, corner_options={"fig": None})
+    with pytest.raises(InputError, match=r"corner_options: 'bin' is not an argument of corner.corner "
+                                         r"\(did you mean 'bins'"):
+        plots.corner_plot(fit, corner_options={"bin": 12})
+
+
+@pytest.mark.parametrize("name", ["corner_plot", "sed_plot", "trace_plot"])
+def test_source_figures_accept_fig_and_return_it(fit, name):
+    fig = Figure()
+    kw = {"n_draws": 50} if name == "sed_plot" else {}
+    assert getattr(plots, name)(fit, fig=fig, **kw) is fig
+
+
+def test_comparison_skips_rows_without_a_flag(catalogue):
+    """A results file read back has masked cells for skipped sources: those rows are not drawn."""
+    from astropy.table import MaskedColumn
+
+    t = catalogue.copy()
+    t["flag"] = MaskedColumn([str(f) for f in t["flag"]], mask=[i == 2 for i in range(len(t))])
+    for c in ("T_median", "T_p16", "T_p84"):
+        t[c] = MaskedColumn(np.asarray(t[c], float), mask=[i == 2 for i in range(len(t))])
+    ax = plots.comparison_plot(t).axes[0]
+    drawn = sum(len(_line(ax, f"flag_{f}").get_xdata()) for f in plots.FLAG_STYLES
+                if any(line.get_gid() == f"flag_{f}" for line in ax.lines))
+    assert drawn == len(t) - 1
