@@ -49,6 +49,6 @@ def test_mpi_run_equals_serial_run(tmp_path):
     a = Table.read(tmp_path / "mpi" / "results.ecsv")
     b = Table.read(tmp_path / "serial" / "results.ecsv")
     assert len(a) == len(b) == 12 and list(a["src"]) == list(b["src"])
-    for col in ("T_median", "beta_p16", "T_eq", "p_warmer"):
+    for col in ("T_median", "beta_p16", "T_eq_point", "p_warmer"):
         np.testing.assert_allclose(np.asarray(a[col]), np.asarray(b[col]), rtol=1e-10, equal_nan=True)
-    assert list(a["flag"]) == list(b["flag"])
+    assert list(a["heating_class"]) == list(b["heating_class"])
