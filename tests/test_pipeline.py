@@ -11,12 +11,14 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-from conftest import CATALOG_WAVE, invented_catalog
+
 from sedtemp import pipeline
 from sedtemp.pipeline.catalog import map_catalog, read_catalog
 from sedtemp.pipeline.config import load_workflow, parse_workflow
 
 ROOT = Path(__file__).resolve().parents[1]
+from invented import CATALOG_WAVE, invented_catalog  # noqa: E402
+
 WAVE = CATALOG_WAVE
 
 

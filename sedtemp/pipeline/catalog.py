@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import csv
 import re
+import warnings
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -480,7 +481,7 @@ def _check_field(mapped, probs):
     try:
         build_field(mapped.field_arguments(0), A_V=float(mapped.A_V[0]))
     except Exception as err:  # any constructor error is reported, with the component
-        probs.add(f"[field]: cannot build the radiation field of source {mapped.keys[0]!r}: {err}")
+        probs.add(f"[field]: cannot build the radiation field of source {str(mapped.keys[0])!r}: {err}")
 
 
 def map_catalog(table, workflow: Workflow, *, n_free=None) -> MappedCatalog:
@@ -571,8 +572,55 @@ def _n_free(wf) -> int:
     return len(model.param_names)
 
 
+def _sidecar(table: Table, path: Path) -> None:
+    """Metadata and column descriptions beside a file whose format cannot hold them (CSV, VOTable)."""
+    import json
+
+    from .._io import atomic_write_text
+
+    cols = {c: {"unit": None if table[c].unit is None else str(table[c].unit),
+                "description": table[c].description} for c in table.colnames}
+    atomic_write_text(path.with_name(path.stem + "-meta.json"),
+                      json.dumps({"meta": dict(table.meta), "columns": cols}, indent=1, default=str))
+
+
+def _for_votable(table: Table) -> Table:
+    """VOUnit has no dex: log-valued columns are written unit-less, their unit in the description."""
+    out = table.copy(copy_data=False)
+    for name in out.colnames:
+        unit = out[name].unit
+        if unit is not None and isinstance(unit, u.FunctionUnitBase):
+            out[name].unit = None
+            out[name].description = f"{out[name].description or name} [{unit}]"
+    out.meta = {k: v for k, v in table.meta.items() if isinstance(v, (str, int, float))}
+    return out
+
+
+def _write_fits(table, tmp):
+    """FITS: a QTable keeps units FITS cannot state (dex(solMass)) through astropy's metadata
+    block; nested or multi-line metadata is stored as JSON text (header cards hold one line)."""
+    import json
+
+    from astropy.table import QTable
+
+    out = QTable(table, copy=False)
+    out.meta = {k: (v if isinstance(v, (int, float)) or (isinstance(v, str) and "\n" not in v)
+                    else json.dumps(v)) for k, v in table.meta.items()}
+    with warnings.catch_warnings():
+        # the dex unit is kept in astropy's metadata block (read back with QTable.read); plain
+        # FITS readers see the column without a unit, which the warning says and we document
+        warnings.filterwarnings("ignore", message=".*could not be saved in native FITS format")
+        # long metadata keys become HIERARCH cards, the FITS convention for them
+        warnings.filterwarnings("ignore", message="Keyword name .* HIERARCH card will be created")
+        out.write(tmp, format="fits", overwrite=True)
+
+
 def write_table(table: Table, path, *, format="ecsv") -> Path:
     """Write ``table`` atomically (temporary file in the same folder, then rename).
+
+    ECSV and FITS keep every unit, description and the metadata; CSV and
+    VOTable, which cannot hold all of it, get ``<stem>-meta.json`` beside
+    them (VOTable keeps units it can state, UCDs and descriptions itself).
 
     Parameters
     ----------
@@ -587,7 +635,13 @@ def write_table(table: Table, path, *, format="ecsv") -> Path:
     """
     writer, _ = OUTPUT_FORMATS[format]
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
     with atomic_path(path) as tmp:
-        table.write(tmp, format=writer, overwrite=True)
+        if format == "fits":
+            _write_fits(table, tmp)
+        elif format == "votable":
+            _for_votable(table).write(tmp, format=writer, overwrite=True)
+        else:
+            table.write(tmp, format=writer, overwrite=True)
+    if format in ("csv", "votable") and table.meta:
+        _sidecar(table, path)
     return path
