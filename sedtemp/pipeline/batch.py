@@ -24,6 +24,7 @@ import time
 from contextlib import ExitStack
 from pathlib import Path
 
+import astropy.units as u
 import numpy as np
 from astropy.table import Table, vstack
 
@@ -35,7 +36,7 @@ from .config import OUTPUT_FORMATS, Workflow
 from .executors import EXECUTORS, InlineExecutor, open_executor
 from .figures import SOURCES_DIR, catalogue_plots, select_plot_sources, source_plots
 from .report import Progress, write_report
-from .schema import DRAW_PREFIX, assemble, describe
+from .schema import CLASS_COLUMN, DRAW_PREFIX, FIT_FLAGS_COLUMN, assemble, describe, order, spec
 from .stages import process_chunk
 
 __all__ = ["run_batch", "open_executor", "InlineExecutor", "write_report", "check_optional_packages",
@@ -46,6 +47,7 @@ log = logging.getLogger(__name__)
 #: Tasks kept in flight per worker: enough to keep workers busy, few enough that a
 #: million-source catalogue is not all pickled at once.
 _IN_FLIGHT_PER_WORKER = 3
+_KINDS = {"f": float, "i": np.int64, "b": bool, "U": str}
 #: Packages whose versions the results record.
 _RECORDED = ("numpy", "scipy", "astropy", "emcee")
 
@@ -117,10 +119,31 @@ def run_metadata(wf: Workflow, mapped: MappedCatalog) -> dict:
             "seed": wf.run["seed"], "id_column": mapped.id_column, "band_names": list(mapped.band_names)}
 
 
+def _result_names(wf: Workflow) -> list[str]:
+    """The columns a run of ``wf`` writes (what an empty catalogue's results still carry)."""
+    from ..fit.summary import QUANTILES
+
+    model = wf.build_model(distance=1.0 * u.pc) if wf.model["amplitude"] == "mass" else wf.build_model()
+    names = [f"{p}_{k}" for p in model.param_names for k in (*QUANTILES, "map")]
+    names += ["T_beta_corr"] if "beta" in model.param_names else []
+    names += ["chi2_map", "n_bands_used", "dof", "chi2_reduced", "ppp", FIT_FLAGS_COLUMN, "method", "converged"]
+    if wf.field["components"]:
+        names += ["T_eq_point", "beta_for_T_eq"]
+        if wf.compare["enabled"]:
+            names += [f"{q}_{k}" for q in ("T_eq", "ratio", "U_implied", "field_scale", "extra_power",
+                                           "extra_power_solar", "extra_luminosity") for k in QUANTILES]
+            names += ["p_warmer", "stochastic_fraction", "T_eq_is_upper_bound", CLASS_COLUMN, "verdict"]
+    return names
+
+
 def empty_results(mapped: MappedCatalog, wf: Workflow) -> Table:
-    """The results table of an empty catalogue: every column, no rows."""
-    tab = assemble(mapped, [], [], [], workflow=wf)
-    return tab[[c for c in tab.colnames if not c.startswith("_")]]
+    """The results table of an empty catalogue: every column (with its unit), no rows."""
+    tab = assemble(mapped, [{name: None for name in _result_names(wf)}][:0], [], [], workflow=wf)
+    for name in order(_result_names(wf)):
+        if name not in tab.colnames:
+            tab[name] = np.zeros(0, dtype=_KINDS[spec(name).kind])
+    tab = tab[[mapped.id_column, *order([c for c in tab.colnames if c != mapped.id_column and not c.startswith("_")])]]
+    return describe(tab)
 
 
 def _finalise(tabs: list[Table], wf: Workflow, mapped: MappedCatalog) -> Table:
