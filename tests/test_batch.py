@@ -131,7 +131,8 @@ def test_resume_from_checkpoints(tmp_path, reference, catalog):
     again = run_batch(m, wf, output_dir=tmp_path)
     _same(again, full)
     _same(full, reference[[c for c in reference.colnames if not c.startswith("draws_")]])
-    assert sorted(p.name for p in (tmp_path / "parts").iterdir()) == [p.name for p in parts]
+    assert sorted(p.name for p in (tmp_path / "parts").glob("part-*")) == [p.name for p in parts]
+    assert not list((tmp_path / "parts").glob(".tmp-*"))  # the half-written file is removed
     on_disk = Table.read(tmp_path / "results.ecsv")
     assert on_disk["name"].tolist() == catalog["name"].tolist()  # every source exactly once
     np.testing.assert_array_equal(on_disk["T_median"], full["T_median"])

@@ -3,8 +3,9 @@
 Layout of an output folder::
 
     <out>/.sedtemp.lock          held (flock) by the running process; pid, host, start time
-    <out>/run-state.json         digests of the inputs, and the checksum of every part
+    <out>/run-state.json         digests of the inputs (written when a session starts)
     <out>/parts/part-<row>-<sha>.ecsv   one per finished chunk, written atomically
+    <out>/parts/checksums.txt    "<part name> <sha256>" appended per finished chunk
 
 Resume refuses, naming what changed, when anything that changes results
 differs from the run that wrote the parts: the workflow content except
@@ -47,6 +48,9 @@ PARTS_DIR = "parts"
 STATE_FILE = "run-state.json"
 LOCK_FILE = ".sedtemp.lock"
 _PART_GLOB = "part-*.ecsv"
+#: Journal of part checksums: one line appended per part (a state file rewritten per part
+#: would make a million-source run quadratic in its number of chunks).
+JOURNAL = "checksums.txt"
 
 
 class OutputLock:
@@ -195,8 +199,8 @@ class RunState:
         self.damaged: list[str] = []
         self.removed_temporaries: list[str] = []
         if restart and self.parts_dir.exists():
-            for p in self.parts_dir.glob(_PART_GLOB):
-                p.unlink()
+            for p in [*self.parts_dir.glob(_PART_GLOB), self.parts_dir / JOURNAL]:
+                p.unlink(missing_ok=True)
         self._check_previous(restart)
         self.parts_dir.mkdir(parents=True, exist_ok=True)
         self.removed_temporaries = [p.name for p in remove_stale_temporaries(self.parts_dir)
@@ -224,11 +228,23 @@ class RunState:
             raise ConfigError(f"output folder {str(self.out)!r} holds checkpoints of a run with other inputs; "
                               f"changed: {'; '.join(what)}. Use another [output] directory, or start afresh "
                               "with `sedtemp run --restart`")
-        self.parts = dict(old.get("parts", {}))
+        self.parts = self._journal()
+
+    def _journal(self) -> dict:
+        out = {}
+        path = self.parts_dir / JOURNAL
+        if path.exists():
+            for line in path.read_text(encoding="utf-8", errors="replace").splitlines():
+                name, _, sha = line.partition(" ")
+                if len(sha) == 64:  # a line torn by a kill is ignored
+                    out[name] = sha
+        return out
 
     def _save(self):
-        state = dict(self.digests, sedtemp_version=__version__, parts=self.parts)
+        state = dict(self.digests, sedtemp_version=__version__)
         atomic_write_text(self.file, json.dumps(state, indent=1))
+        lines = "".join(f"{k} {v}\n" for k, v in sorted(self.parts.items()))
+        atomic_write_text(self.parts_dir / JOURNAL, lines)
 
     def read_parts(self) -> list[Table]:
         """The valid parts; damaged or duplicate ones are reported (``damaged``), removed, refitted."""
@@ -271,5 +287,8 @@ class RunState:
         name = f"part-{int(tab['_row'][0]):09d}-{sha[:16]}.ecsv"
         os.replace(staging, self.parts_dir / name)
         self.parts[name] = sha
-        self._save()
+        with open(self.parts_dir / JOURNAL, "a", encoding="utf-8") as fh:
+            fh.write(f"{name} {sha}\n")
+            fh.flush()
+            os.fsync(fh.fileno())
         return name
