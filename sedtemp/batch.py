@@ -4,5 +4,5 @@ Kept so that callers of version 0.1 (``from sedtemp.batch import ...``) keep wor
 new code imports from :mod:`sedtemp.pipeline`.
 """
 
-from .pipeline.batch import *  # noqa: F401,F403
+from .pipeline.batch import *
 from .pipeline.batch import __all__  # noqa: F401

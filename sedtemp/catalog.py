@@ -4,5 +4,5 @@ Kept so that callers of version 0.1 (``from sedtemp.catalog import ...``) keep w
 new code imports from :mod:`sedtemp.pipeline`.
 """
 
-from .pipeline.catalog import *  # noqa: F401,F403
+from .pipeline.catalog import *
 from .pipeline.catalog import __all__  # noqa: F401

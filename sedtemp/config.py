@@ -4,5 +4,5 @@ Kept so that callers of version 0.1 (``from sedtemp.config import ...``) keep wo
 new code imports from :mod:`sedtemp.pipeline`.
 """
 
-from .pipeline.config import *  # noqa: F401,F403
+from .pipeline.config import *
 from .pipeline.config import __all__  # noqa: F401

@@ -3,7 +3,6 @@
 import astropy.units as u
 import numpy as np
 import pytest
-from astropy.table import Table
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
@@ -43,7 +42,7 @@ def source(model, bands):
     return f[0], err[0]
 
 
-from invented import CATALOG_WAVE, catalog_workflow_data, invented_catalog  # noqa: E402,F401 - shared helpers
+from invented import CATALOG_WAVE, catalog_workflow_data, invented_catalog
 
 
 @pytest.fixture(scope="session")

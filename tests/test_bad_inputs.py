@@ -5,8 +5,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-
 from invented import catalog_workflow_data, invented_catalog
+
 from sedtemp.errors import CatalogError, ConfigError
 from sedtemp.pipeline import map_catalog, parse_workflow, read_catalog, run
 

@@ -9,13 +9,13 @@ import pytest
 from astropy.table import Table
 
 from sedtemp import pipeline
-from sedtemp.pipeline import stages
 from sedtemp.bands import Band, BandSet
+from sedtemp.errors import ConfigError
+from sedtemp.models import ModifiedBlackbody
+from sedtemp.pipeline import stages
 from sedtemp.pipeline.batch import InlineExecutor, run_batch
 from sedtemp.pipeline.catalog import map_catalog
 from sedtemp.pipeline.config import parse_workflow
-from sedtemp.errors import ConfigError
-from sedtemp.models import ModifiedBlackbody
 
 WAVE = (70, 160, 250, 350, 500)
 

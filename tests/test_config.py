@@ -8,8 +8,13 @@ import numpy as np
 import pytest
 
 from sedtemp import fields
-from sedtemp.pipeline.config import load_workflow, lookup_model, parse_quantity, parse_workflow
 from sedtemp.errors import ConfigError
+from sedtemp.pipeline.config import (
+    load_workflow,
+    lookup_model,
+    parse_quantity,
+    parse_workflow,
+)
 from sedtemp.priors import Gaussian, Uniform
 
 BASE = """\

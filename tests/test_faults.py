@@ -16,8 +16,8 @@ import time
 import numpy as np
 import pytest
 from astropy.table import Table
-
 from invented import catalog_workflow_data, invented_catalog
+
 from sedtemp.errors import ConfigError
 from sedtemp.pipeline import map_catalog, parse_workflow, run_batch
 from sedtemp.pipeline.checkpoints import LOCK_FILE, OutputLock

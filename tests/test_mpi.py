@@ -42,7 +42,7 @@ def test_mpi_run_equals_serial_run(tmp_path):
     cmd += [sys.executable, "-m", "mpi4py.futures", "-m", "sedtemp", "run", str(wf_mpi), "--quiet",
             "--output", str(tmp_path / "mpi")]
     env = {k: v for k, v in os.environ.items() if not k.startswith(("OMPI_", "PMIX_", "PMI_"))}
-    done = subprocess.run(cmd, timeout=600, capture_output=True, text=True, env=env)
+    done = subprocess.run(cmd, timeout=600, capture_output=True, text=True, env=env, check=False)
     assert done.returncode == 0, done.stderr[-2000:]
     subprocess.run([sys.executable, "-m", "sedtemp", "run", str(wf_serial), "--quiet",
                     "--output", str(tmp_path / "serial")], check=True, timeout=600, capture_output=True)

@@ -11,13 +11,12 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-
 from sedtemp import pipeline
 from sedtemp.pipeline.catalog import map_catalog, read_catalog
 from sedtemp.pipeline.config import load_workflow, parse_workflow
 
 ROOT = Path(__file__).resolve().parents[1]
-from invented import CATALOG_WAVE, invented_catalog  # noqa: E402
+from invented import CATALOG_WAVE, invented_catalog
 
 WAVE = CATALOG_WAVE
 
@@ -258,7 +257,7 @@ def test_demo_subset_end_to_end(tmp_path, monkeypatch):
 
 def _patch_demo(monkeypatch, **sections):
     """Load the demo workflow with some settings changed (test speed); its file and sha256 stay."""
-    import sedtemp.pipeline.config as config
+    from sedtemp.pipeline import config
 
     real = config.load_workflow
 

@@ -7,9 +7,17 @@ import numpy as np
 import pytest
 from astropy.io.votable import parse_single_table
 from astropy.table import QTable, Table
-
 from invented import catalog_workflow_data, invented_catalog
-from sedtemp.pipeline import OUTPUT_FORMATS, map_catalog, parse_workflow, run_batch, run_summary, schema, summary_lines
+
+from sedtemp.pipeline import (
+    OUTPUT_FORMATS,
+    map_catalog,
+    parse_workflow,
+    run_batch,
+    run_summary,
+    schema,
+    summary_lines,
+)
 from sedtemp.pipeline.report import Progress
 
 

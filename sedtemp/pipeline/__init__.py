@@ -37,19 +37,61 @@ from .executors import EXECUTORS, InlineExecutor, open_executor
 from .figures import SOURCES_DIR, catalogue_plots, select_plot_sources
 from .report import run_summary, summary_lines, write_report
 from .schema import RENAMES, STATUS_FAILED, STATUS_OK, STATUS_SKIPPED
-from .sources import grid_result, plot_source, refit_source, source_plot_stem, source_result, t_eq_band
+from .sources import (
+    grid_result,
+    plot_source,
+    refit_source,
+    source_plot_stem,
+    source_result,
+    t_eq_band,
+)
 from .stages import process_chunk, source_field
 
 #: The radiation field of source ``i`` of a mapped catalogue (name kept from version 0.1).
 build_field = source_field
 
 __all__ = [
-    "run", "fit", "predict", "compare", "process_chunk", "run_batch", "run_metadata",
-    "refit_source", "grid_result", "source_result", "plot_source", "source_plot_stem", "t_eq_band",
-    "load_workflow", "parse_workflow", "parse_quantity", "lookup_model", "Workflow",
-    "OUTPUT_FORMATS", "SOURCE_PLOT_CHOICES", "NON_RESULT_KEYS",
-    "read_catalog", "map_catalog", "MappedCatalog", "write_table", "source_key",
-    "select_plot_sources", "catalogue_plots", "SOURCES_DIR", "write_report", "run_summary", "summary_lines",
-    "check_optional_packages", "open_executor", "InlineExecutor", "EXECUTORS",
-    "source_seed", "source_field", "build_field", "RENAMES", "STATUS_OK", "STATUS_SKIPPED", "STATUS_FAILED",
+    "EXECUTORS",
+    "NON_RESULT_KEYS",
+    "OUTPUT_FORMATS",
+    "RENAMES",
+    "SOURCES_DIR",
+    "SOURCE_PLOT_CHOICES",
+    "STATUS_FAILED",
+    "STATUS_OK",
+    "STATUS_SKIPPED",
+    "InlineExecutor",
+    "MappedCatalog",
+    "Workflow",
+    "build_field",
+    "catalogue_plots",
+    "check_optional_packages",
+    "compare",
+    "fit",
+    "grid_result",
+    "load_workflow",
+    "lookup_model",
+    "map_catalog",
+    "open_executor",
+    "parse_quantity",
+    "parse_workflow",
+    "plot_source",
+    "predict",
+    "process_chunk",
+    "read_catalog",
+    "refit_source",
+    "run",
+    "run_batch",
+    "run_metadata",
+    "run_summary",
+    "select_plot_sources",
+    "source_field",
+    "source_key",
+    "source_plot_stem",
+    "source_result",
+    "source_seed",
+    "summary_lines",
+    "t_eq_band",
+    "write_report",
+    "write_table",
 ]

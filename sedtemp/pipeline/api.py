@@ -23,7 +23,6 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
@@ -34,7 +33,7 @@ from .config import Workflow
 from .schema import DRAW_PREFIX, FIT_FLAGS_COLUMN, STATUS_OK, assemble
 from .stages import compare_stage, predict_stage, prediction_beta, process_chunk
 
-__all__ = ["run", "fit", "predict", "compare"]
+__all__ = ["compare", "fit", "predict", "run"]
 
 
 def _mapped(table, wf: Workflow) -> MappedCatalog:

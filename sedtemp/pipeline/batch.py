@@ -36,11 +36,29 @@ from .config import OUTPUT_FORMATS, Workflow
 from .executors import EXECUTORS, InlineExecutor, open_executor
 from .figures import SOURCES_DIR, catalogue_plots, select_plot_sources, source_plots
 from .report import Progress, write_report
-from .schema import CLASS_COLUMN, DRAW_PREFIX, FIT_FLAGS_COLUMN, assemble, describe, order, spec
+from .schema import (
+    CLASS_COLUMN,
+    DRAW_PREFIX,
+    FIT_FLAGS_COLUMN,
+    assemble,
+    describe,
+    order,
+    spec,
+)
 from .stages import process_chunk
 
-__all__ = ["run_batch", "open_executor", "InlineExecutor", "write_report", "check_optional_packages",
-           "catalogue_plots", "select_plot_sources", "SOURCES_DIR", "run_metadata", "empty_results"]
+__all__ = [
+    "SOURCES_DIR",
+    "InlineExecutor",
+    "catalogue_plots",
+    "check_optional_packages",
+    "empty_results",
+    "open_executor",
+    "run_batch",
+    "run_metadata",
+    "select_plot_sources",
+    "write_report",
+]
 
 log = logging.getLogger(__name__)
 

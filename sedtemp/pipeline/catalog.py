@@ -36,7 +36,7 @@ from ..errors import CatalogError, ConfigError
 from ..fields import build_field
 from .config import OUTPUT_FORMATS, Workflow, parse_quantity
 
-__all__ = ["read_catalog", "map_catalog", "MappedCatalog", "write_table", "source_key"]
+__all__ = ["MappedCatalog", "map_catalog", "read_catalog", "source_key", "write_table"]
 
 _FLUX_SI = u.W / u.m**2 / u.Hz
 #: Field parameters that are dimensionless, so a column without a unit is fine.
@@ -480,7 +480,7 @@ def _check_field(mapped, probs):
         return
     try:
         build_field(mapped.field_arguments(0), A_V=float(mapped.A_V[0]))
-    except Exception as err:  # any constructor error is reported, with the component
+    except Exception as err:  # noqa: BLE001 - any constructor error is reported, with the component
         probs.add(f"[field]: cannot build the radiation field of source {str(mapped.keys[0])!r}: {err}")
 
 

@@ -39,8 +39,16 @@ from ..errors import ConfigError
 from .catalog import MappedCatalog, write_table
 from .config import Workflow
 
-__all__ = ["OutputLock", "RunState", "input_digests", "referenced_files", "PARTS_DIR", "STATE_FILE",
-           "LOCK_FILE", "unmasked"]
+__all__ = [
+    "LOCK_FILE",
+    "PARTS_DIR",
+    "STATE_FILE",
+    "OutputLock",
+    "RunState",
+    "input_digests",
+    "referenced_files",
+    "unmasked",
+]
 
 log = logging.getLogger(__name__)
 

@@ -16,7 +16,7 @@ import math
 
 from ..constants import T_CMB0
 
-__all__ = ["check_sections", "PRIOR_ARGUMENTS", "MAX_WORKERS"]
+__all__ = ["MAX_WORKERS", "PRIOR_ARGUMENTS", "check_sections"]
 
 #: Largest ``[run] workers`` accepted (a typo such as 100000 would start that many processes).
 MAX_WORKERS = 1024

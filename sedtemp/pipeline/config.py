@@ -103,22 +103,22 @@ from pathlib import Path
 
 import astropy.units as u
 
-from ..fields import FIELD_GROUP  # the entry-point group of field kinds, defined once
 from ..errors import ConfigError, InputError
+from ..fields import FIELD_GROUP  # the entry-point group of field kinds, defined once
 from .checks import MAX_WORKERS, check_sections
 
 __all__ = [
-    "Workflow",
-    "load_workflow",
-    "parse_workflow",
-    "parse_quantity",
-    "lookup_model",
-    "MODEL_GROUP",
     "FIELD_GROUP",
+    "MAX_WORKERS",
+    "MODEL_GROUP",
+    "NON_RESULT_KEYS",
     "OUTPUT_FORMATS",
     "SOURCE_PLOT_CHOICES",
-    "NON_RESULT_KEYS",
-    "MAX_WORKERS",
+    "Workflow",
+    "load_workflow",
+    "lookup_model",
+    "parse_quantity",
+    "parse_workflow",
 ]
 
 #: Entry-point group under which other packages register SED model classes.
@@ -581,7 +581,6 @@ def parse_workflow(data, *, base_dir=".", source="<workflow>", text=None) -> Wor
     priors = {}
     for name, spec in _check_mapping_of(data.get("priors", {}), "priors", dict, where).items():
         priors[name] = _check_table(spec, _PRIOR_KEYS, f"priors.{name}", where)
-    cat = sections["catalog"]
     raw_cat = data["catalog"]
     for a, b in (("distance", "distance_column"), ("redshift", "redshift_column")):
         if a in raw_cat and b in raw_cat:

@@ -32,8 +32,19 @@ import threading
 import time
 from collections.abc import Iterator
 
-__all__ = ["ExecutorKind", "SerialKind", "ProcessKind", "DaskKind", "MpiKind", "EXECUTORS",
-           "InlineExecutor", "open_executor", "n_workers", "PARENT_POLL_S", "import_optional"]
+__all__ = [
+    "EXECUTORS",
+    "PARENT_POLL_S",
+    "DaskKind",
+    "ExecutorKind",
+    "InlineExecutor",
+    "MpiKind",
+    "ProcessKind",
+    "SerialKind",
+    "import_optional",
+    "n_workers",
+    "open_executor",
+]
 
 log = logging.getLogger(__name__)
 
@@ -48,7 +59,7 @@ class InlineExecutor(cf.Executor):
         fut = cf.Future()
         try:
             fut.set_result(fn(*args, **kwargs))
-        except BaseException as err:  # delivered through the future, as a pool would
+        except BaseException as err:  # noqa: BLE001 - delivered through the future, as a pool would
             fut.set_exception(err)
         return fut
 

@@ -14,7 +14,7 @@ from .config import SOURCE_PLOT_CHOICES
 from .schema import CLASS_COLUMN, FIT_FLAGS_COLUMN, NONE_TEXT, RENAMES, STATUS_OK
 from .sources import plot_source, t_eq_band
 
-__all__ = ["catalogue_plots", "select_plot_sources", "source_plots", "SOURCES_DIR", "legacy_names"]
+__all__ = ["SOURCES_DIR", "catalogue_plots", "legacy_names", "select_plot_sources", "source_plots"]
 
 log = logging.getLogger(__name__)
 

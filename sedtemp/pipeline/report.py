@@ -25,9 +25,16 @@ from astropy.table import Table
 
 from .._io import atomic_write_text
 from .._version import __version__
-from .schema import CLASS_COLUMN, FIT_FLAGS_COLUMN, NONE_TEXT, STATUS_FAILED, STATUS_OK, STATUS_SKIPPED
+from .schema import (
+    CLASS_COLUMN,
+    FIT_FLAGS_COLUMN,
+    NONE_TEXT,
+    STATUS_FAILED,
+    STATUS_OK,
+    STATUS_SKIPPED,
+)
 
-__all__ = ["Progress", "run_summary", "summary_lines", "write_report", "LOG_EVERY_S"]
+__all__ = ["LOG_EVERY_S", "Progress", "run_summary", "summary_lines", "write_report"]
 
 #: Seconds between plain progress lines when stderr is not a terminal.
 LOG_EVERY_S = 10.0
@@ -152,8 +159,8 @@ def _fmt(r):
 def summary_lines(summary: dict, n: int) -> list[str]:
     """The summary as text lines (the CLI prints them; the report holds them)."""
     s = summary["status"]
-    lines = [f"sources: {n} ({s.get(STATUS_OK, 0)} ok, {s.get(STATUS_SKIPPED, 0)} skipped, "
-             f"{s.get(STATUS_FAILED, 0)} failed)",
+    lines = [(f"sources: {n} ({s.get(STATUS_OK, 0)} ok, {s.get(STATUS_SKIPPED, 0)} skipped, "
+              f"{s.get(STATUS_FAILED, 0)} failed)"),
              "fit quality: " + ", ".join(f"{v} {k}" for k, v in summary["fit_quality"].items())]
     for name, c in summary["classes"].items():
         lines.append(f"  {name}: {c['n']} (T {_fmt(c['T'])} K, beta {_fmt(c['beta'])}, "

@@ -26,10 +26,22 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
-from ..fit.summary import QUANTILES
-
-__all__ = ["ColumnSpec", "spec", "known", "assemble", "describe", "order", "RENAMES", "STATUS_OK",
-           "STATUS_SKIPPED", "STATUS_FAILED", "NONE_TEXT", "DRAW_PREFIX", "CLASS_COLUMN", "FIT_FLAGS_COLUMN"]
+__all__ = [
+    "CLASS_COLUMN",
+    "DRAW_PREFIX",
+    "FIT_FLAGS_COLUMN",
+    "NONE_TEXT",
+    "RENAMES",
+    "STATUS_FAILED",
+    "STATUS_OK",
+    "STATUS_SKIPPED",
+    "ColumnSpec",
+    "assemble",
+    "describe",
+    "known",
+    "order",
+    "spec",
+]
 
 STATUS_OK, STATUS_SKIPPED, STATUS_FAILED = "ok", "skipped", "failed"
 #: Text written for "no flags" / "no reason" (an empty string reads back as masked in ECSV).

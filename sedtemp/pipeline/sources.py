@@ -22,7 +22,7 @@ from .catalog import MappedCatalog
 from .config import Workflow
 from .stages import _model, _scaling, fit_method, grid_for, mcmc_result, source_streams
 
-__all__ = ["refit_source", "grid_result", "source_result", "plot_source", "source_plot_stem", "t_eq_band"]
+__all__ = ["grid_result", "plot_source", "refit_source", "source_plot_stem", "source_result", "t_eq_band"]
 
 
 def _check_index(mapped, index, what):

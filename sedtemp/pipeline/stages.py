@@ -37,8 +37,18 @@ from .catalog import MappedCatalog
 from .config import Workflow
 from .schema import STATUS_FAILED, STATUS_OK, STATUS_SKIPPED, assemble
 
-__all__ = ["fit_stage", "predict_stage", "compare_stage", "process_chunk", "FitOutput",
-           "source_field", "grid_for", "mcmc_result", "source_streams", "fit_method"]
+__all__ = [
+    "FitOutput",
+    "compare_stage",
+    "fit_method",
+    "fit_stage",
+    "grid_for",
+    "mcmc_result",
+    "predict_stage",
+    "process_chunk",
+    "source_field",
+    "source_streams",
+]
 
 log = logging.getLogger(__name__)
 
