@@ -286,3 +286,15 @@ def test_demo_without_h5py(tmp_path, monkeypatch, capsys):
     assert (tmp_path / "population.png").exists()
     src = json.loads((tmp_path / "results-report.json").read_text())["plots"]["sources"]
     assert src["made"] == 0 and src["cap_reached"] == (src["selected"] > 0)  # cap 0: none made
+
+
+def test_grid_cache_follows_edits_of_a_parsed_workflow():
+    """The per-process grid cache is keyed on the workflow's current content, not its parse-time digest."""
+    t = _catalog(3)
+    wf = _workflow()
+    before = pipeline.fit(t, wf)
+    wf.fit["n_T"] = 25  # edited after parsing: the cached 40-node grid must not be reused
+    edited = pipeline.fit(t, wf)
+    fresh = pipeline.fit(t, _workflow(fit={"n_T": 25}))
+    np.testing.assert_array_equal(edited["T_median"], fresh["T_median"])
+    assert not np.array_equal(edited["T_median"], before["T_median"])
