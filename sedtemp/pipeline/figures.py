@@ -116,7 +116,7 @@ def _plot_task(wf, sub, directory, t_eq):
     """One source's figures (a worker task); never raises: (paths, "" or the failure, refitted)."""
     info = {}
     try:
-        return [str(p) for p in plot_source(wf, sub, 0, directory, T_eq=t_eq, info=info)], "", info.get("refit", False)
+        return [str(p) for p in plot_source(wf, sub, 0, directory, T_eq=t_eq, trace=None, info=info)], "", info.get("refit", False)
     except Exception as err:  # noqa: BLE001 - one failed figure must not lose the others
         return [], f"{type(err).__name__}: {err}", info.get("refit", False)
 

@@ -164,7 +164,7 @@ def t_eq_band(row):
 
 
 def plot_source(workflow: Workflow, mapped: MappedCatalog, index: int, directory, *, T_eq=None,
-                trace: bool | None = None, info: dict | None = None) -> list:
+                trace: bool | None = True, info: dict | None = None) -> list:
     """Write the corner and SED plots of one source (and its trace plot when it has a chain).
 
     Parameters
@@ -179,9 +179,11 @@ def plot_source(workflow: Workflow, mapped: MappedCatalog, index: int, directory
         from :func:`source_plot_stem`.
     T_eq : array_like, optional, keyword-only
         Predicted equilibrium temperature (K) shaded on the corner plot.
-    trace : bool, optional, keyword-only
-        Make the trace plot: default only for MCMC sources; True refits a
-        grid source by MCMC for it.
+    trace : bool or None, keyword-only
+        True (default, as ``sedtemp plot --source``): refit the source by
+        MCMC with its seed and make the trace plot too; None (the batch
+        run): the trace plot only for sources the run fitted by MCMC, the
+        others drawn from their grid draws without a refit; False: never.
     info : dict, optional, keyword-only
         Receives ``refit`` (bool: an MCMC fit was run for these figures).
 
@@ -197,7 +199,7 @@ def plot_source(workflow: Workflow, mapped: MappedCatalog, index: int, directory
     """
     from .. import plots
 
-    res, refit = source_result(workflow, mapped, index, chain=bool(trace))
+    res, refit = source_result(workflow, mapped, index, chain=trace is True)
     if info is not None:
         info["refit"] = refit
     stem = Path(directory) / source_plot_stem(mapped.keys[index])
