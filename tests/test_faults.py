@@ -209,10 +209,17 @@ def test_non_result_keys_may_change_on_resume(tmp_path, catalog, reference):
     _assert_equal_to(res, reference)
 
 
-def _run_pool_forever(out, catalog):
-    wf = _workflow(run={"executor": "process", "workers": 1, "chunk_size": 1},
-                   fit={"method": "mcmc", "n_walkers": 16, "ess_target": 100000, "max_steps": 10**7})
-    run_batch(map_catalog(catalog[:2], wf), wf, output_dir=out)
+#: A fresh interpreter (not a fork: a forked child would share this process's forkserver)
+#: running a pool whose single chunk takes far longer than the test.
+_POOL_SCRIPT = """
+import sys
+sys.path.insert(0, {tests!r})
+from invented import catalog_workflow_data, invented_catalog
+from sedtemp.pipeline import map_catalog, parse_workflow, run_batch
+wf = parse_workflow(catalog_workflow_data(run={{"executor": "process", "workers": 1, "chunk_size": 1}},
+    fit={{"method": "mcmc", "n_walkers": 16, "ess_target": 100000, "max_steps": 10**7}}))
+run_batch(map_catalog(invented_catalog(2, 21), wf), wf, output_dir={out!r})
+"""
 
 
 def _descendants(pid):
@@ -241,17 +248,22 @@ def _running(pid):
 
 
 @pytest.mark.skipif(not os.path.isdir("/proc"), reason="reads the process tree from /proc")
-def test_workers_end_when_main_process_is_killed(tmp_path, catalog):
-    proc = FORK.Process(target=_run_pool_forever, args=(tmp_path, catalog))
-    proc.start()
-    deadline = time.monotonic() + 30
+def test_workers_end_when_main_process_is_killed(tmp_path):
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = _POOL_SCRIPT.format(tests=str(Path(__file__).parent), out=str(tmp_path))
+    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 60
     workers = set()
     while time.monotonic() < deadline and len(workers) < 2:  # forkserver and its worker
         time.sleep(0.3)
         workers = _descendants(proc.pid)
     assert workers, "no worker process started"
+    time.sleep(1.0)  # let the worker start its chunk
     os.kill(proc.pid, signal.SIGKILL)
-    proc.join(10)
+    proc.wait(10)
     deadline = time.monotonic() + 10
     alive = workers
     while alive and time.monotonic() < deadline:

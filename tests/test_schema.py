@@ -1,6 +1,7 @@
 """The results schema: every column described, typed and united; metadata kept in every format."""
 
 import json
+import os
 
 import astropy.units as u
 import numpy as np
@@ -117,3 +118,13 @@ def test_progress_plain_lines_when_not_a_terminal(tmp_path):
     lines = buf.getvalue().splitlines()
     assert lines[-1].startswith("sedtemp fit: 4/4 sources (2 ok, 1 skipped, 1 failed), ")
     assert "\r" not in buf.getvalue()
+
+
+def test_results_parts_and_report_have_the_usual_permissions(run_dir):
+    """Files are created 0666 minus the umask (mkstemp alone would leave results and parts 0600)."""
+    out, _, _ = run_dir
+    umask = os.umask(0)
+    os.umask(umask)
+    expected = 0o666 & ~umask
+    files = [out / "results.ecsv", out / "results-report.txt", *(out / "parts").glob("part-*.ecsv")]
+    assert {f.stat().st_mode & 0o777 for f in files} == {expected}

@@ -138,8 +138,9 @@ class ProcessKind(ExecutorKind):
         try:
             yield ex, n
         except BaseException:
+            procs = list((getattr(ex, "_processes", None) or {}).values())
             ex.shutdown(wait=False, cancel_futures=True)  # Ctrl-C or a failure: do not wait for queued work
-            for proc in list(getattr(ex, "_processes", {}).values()):
+            for proc in procs:
                 proc.terminate()  # a running chunk is lost anyway; its part is never half-written
             raise
         else:
