@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 
 from ..constants import T_CMB0
+from ..errors import ConfigError
 
 __all__ = ["MAX_WORKERS", "PRIOR_ARGUMENTS", "check_sections"]
 
@@ -135,3 +136,18 @@ def check_sections(sections: dict, priors: dict, where) -> None:
     for name, spec in priors.items():
         _check_prior(name, spec, where, model)
     _check_distance_redshift(sections["catalog"], where)
+
+
+#: Reference wavelengths (m) accepted for a band: the far-IR/submm and some margin.
+_BAND_RANGE_M = (10e-6, 1e-2)
+
+
+def check_far_ir(bands, source) -> None:
+    """Refuse bands far outside the far-IR/submm (e.g. a response file in the wrong unit)."""
+    c = 299792458.0
+    for b in bands:
+        lam = c / b.nu_ref_hz
+        if not _BAND_RANGE_M[0] <= lam <= _BAND_RANGE_M[1]:
+            raise ConfigError(f"{source}: [bands.{b.name}]: reference wavelength {lam * 1e6:.4g} um is "
+                              "outside the far-IR/submm range 10 um - 1 cm that sedtemp fits; check the "
+                              "response file's unit or the band's wavelength")

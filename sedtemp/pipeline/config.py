@@ -105,7 +105,7 @@ import astropy.units as u
 
 from ..errors import ConfigError, InputError
 from ..fields import FIELD_GROUP  # the entry-point group of field kinds, defined once
-from .checks import MAX_WORKERS, check_sections
+from .checks import MAX_WORKERS, check_far_ir, check_sections
 
 __all__ = [
     "FIELD_GROUP",
@@ -387,7 +387,7 @@ class Workflow:
                     out.append(Band.from_file(name, self.path(spec["response"]), **conv))
             except InputError as err:
                 raise ConfigError(f"{self.source}: [bands.{name}]: {err}") from err
-        _check_far_ir(out, self.source)
+        check_far_ir(out, self.source)
         return BandSet(out)
 
     def calibration_groups(self):
@@ -477,21 +477,6 @@ class Workflow:
             except InputError as err:
                 raise ConfigError(f"{self.source}: [priors.{name}]: {err}") from err
         return out
-
-
-#: Reference wavelengths (m) accepted for a band: the far-IR/submm and some margin.
-_BAND_RANGE_M = (10e-6, 1e-2)
-
-
-def _check_far_ir(bands, source):
-    """Refuse bands far outside the far-IR/submm (e.g. a response file in the wrong unit)."""
-    c = 299792458.0
-    for b in bands:
-        lam = c / b.nu_ref_hz
-        if not _BAND_RANGE_M[0] <= lam <= _BAND_RANGE_M[1]:
-            raise ConfigError(f"{source}: [bands.{b.name}]: reference wavelength {lam * 1e6:.4g} um is "
-                              "outside the far-IR/submm range 10 um - 1 cm that sedtemp fits; check the "
-                              "response file's unit or the band's wavelength")
 
 
 def _check_bands(data, where):
