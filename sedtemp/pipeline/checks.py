@@ -101,9 +101,12 @@ def _check_distance_redshift(cat, where):
     import astropy.units as u
     from astropy.cosmology import Planck18
 
-    from .config import parse_quantity
+    try:  # the same reading as config.parse_quantity (a bare number is in pc)
+        q = u.Quantity(dist) if isinstance(dist, str) else float(dist) * u.pc
+        d = (q if q.unit != u.dimensionless_unscaled else q.value * u.pc).to_value(u.Mpc)
+    except (TypeError, ValueError, u.UnitConversionError):
+        return  # reported with its own message when the distance is used
 
-    d = parse_quantity(dist, "pc", "[catalog] distance").to_value(u.Mpc)
     d_l = Planck18.luminosity_distance(z).to_value(u.Mpc)
     if not 0.5 < d / d_l < 2.0 or not math.isfinite(d):
         _fail(where, "catalog", "distance", f"{d:.4g} Mpc disagrees with redshift {z:g} (luminosity "

@@ -20,7 +20,14 @@ import numpy as np
 from ..errors import InputError, SedtempWarning
 from .catalog import MappedCatalog
 from .config import Workflow
-from .stages import _model, _scaling, fit_method, grid_for, mcmc_result, source_streams
+from .stages import (
+    fit_method,
+    flux_scaling,
+    grid_for,
+    mcmc_result,
+    model_for,
+    source_streams,
+)
 
 __all__ = ["grid_result", "plot_source", "refit_source", "source_plot_stem", "source_result", "t_eq_band"]
 
@@ -93,7 +100,7 @@ def grid_result(workflow: Workflow, mapped: MappedCatalog, index: int):
 
     key = _check_index(mapped, index, "grid_result")
     i = int(index)
-    d_grid, factor = _scaling(workflow, mapped, i)
+    d_grid, factor = flux_scaling(workflow, mapped, i)
     grid = grid_for(workflow, mapped.redshift[i], d_grid)
     sl = slice(i, i + 1)
     with warnings.catch_warnings():
@@ -108,7 +115,7 @@ def grid_result(workflow: Workflow, mapped: MappedCatalog, index: int):
         v = np.asarray(extra["draws"][name][0])[: workflow.fit["n_draws"]]
         samples[name] = v + shift if name == model.amplitude_name else v
     if factor != 1.0:
-        model = _model(workflow, mapped.redshift[i], float(mapped.distance_m[i]))
+        model = model_for(workflow, mapped.redshift[i], float(mapped.distance_m[i]))
     n = len(samples["T"])
     map_params = {p: float(cols[f"{p}_map"][0]) + (shift if p == model.amplitude_name else 0.0)
                   for p in model.param_names if f"{p}_map" in cols}

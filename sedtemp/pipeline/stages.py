@@ -73,7 +73,8 @@ def source_field(mapped: MappedCatalog, i: int):
     return build_field(mapped.field_arguments(i), A_V=float(mapped.A_V[i]))
 
 
-def _model(wf, redshift, distance_m):
+def model_for(wf: Workflow, redshift: float, distance_m):
+    """The workflow's SED model at this redshift and distance (m; None when the amplitude is no mass)."""
     dist = None if distance_m is None else distance_m * u.m
     return wf.build_model(distance=dist, redshift=redshift) if wf.model["amplitude"] == "mass" \
         else wf.build_model(redshift=redshift)
@@ -87,7 +88,7 @@ def grid_for(wf: Workflow, redshift: float, distance_m, digest: str | None = Non
     if key not in _GRIDS:
         if len(_GRIDS) >= _GRID_CACHE_SIZE:  # a catalogue with many redshifts: memory stays bounded
             _GRIDS.clear()
-        model = _model(wf, redshift, distance_m)
+        model = model_for(wf, redshift, distance_m)
         prior = model.default_prior().updated(wf.build_prior())
         t_nodes = np.geomspace(prior["T"].low, prior["T"].high, wf.fit["n_T"])
         b_nodes = (np.linspace(prior["beta"].low, prior["beta"].high, wf.fit["n_beta"])
@@ -97,7 +98,7 @@ def grid_for(wf: Workflow, redshift: float, distance_m, digest: str | None = Non
     return _GRIDS[key]
 
 
-def _scaling(wf, mapped, i):
+def flux_scaling(wf: Workflow, mapped: MappedCatalog, i: int):
     """(grid distance in m or None, flux factor) for source i (see _D_REF_M)."""
     if wf.model["amplitude"] != "mass" or mapped.distance_m is None:
         return None, 1.0
@@ -131,9 +132,9 @@ def _fail(out, i, stage, key, err):
 
 def _grid_block(wf, mapped, idx, out, digest):
     """Grid-fit the sources ``idx`` (same grid key) in one block call."""
-    d_grid, _ = _scaling(wf, mapped, idx[0])
+    d_grid, _ = flux_scaling(wf, mapped, idx[0])
     grid = grid_for(wf, mapped.redshift[idx[0]], d_grid, digest)
-    factor = np.array([_scaling(wf, mapped, i)[1] for i in idx])[:, None]
+    factor = np.array([flux_scaling(wf, mapped, i)[1] for i in idx])[:, None]
     rngs = [np.random.default_rng(source_streams(wf, mapped.keys[i])[0]) for i in idx]
     cols, extra = grid.summarise(mapped.flux[idx] * factor, mapped.err[idx] * factor, mapped.limit_only[idx],
                                  n_draws=wf.fit["n_draws"], rng=rngs, keep_draws=True)
@@ -153,10 +154,10 @@ def mcmc_result(wf: Workflow, mapped: MappedCatalog, i: int, seq, *, rescaled: b
     """
     from ..fit import fit_source
 
-    d_grid, factor = _scaling(wf, mapped, i)
+    d_grid, factor = flux_scaling(wf, mapped, i)
     if not rescaled and factor != 1.0:
         d_grid, factor = float(mapped.distance_m[i]), 1.0
-    model = _model(wf, mapped.redshift[i], d_grid)
+    model = model_for(wf, mapped.redshift[i], d_grid)
     used = ~mapped.missing[i]
     flux = np.where(used, mapped.flux[i] * factor, np.nan) * (u.W / u.m**2 / u.Hz)
     err = np.where(used, mapped.err[i] * factor, np.nan) * (u.W / u.m**2 / u.Hz)
@@ -198,7 +199,7 @@ def fit_stage(wf: Workflow, mapped: MappedCatalog) -> FitOutput:
     grid_idx = [i for i in todo if out.methods[i] == "grid"]
     groups: dict = {}
     for i in grid_idx:
-        groups.setdefault((round(float(mapped.redshift[i]), 9), _scaling(wf, mapped, i)[0]), []).append(i)
+        groups.setdefault((round(float(mapped.redshift[i]), 9), flux_scaling(wf, mapped, i)[0]), []).append(i)
     digest = wf.results_digest() if groups else None
     with warnings.catch_warnings():
         # every sedtemp warning of a fit is also one of its flags (STYLE.md), which
