@@ -49,9 +49,9 @@ def test_referenced_files_are_the_band_responses(tmp_path):
 
 
 def test_second_lock_in_the_same_process_refused(tmp_path):
-    with OutputLock(tmp_path):
-        with pytest.raises(ConfigError, match=rf"is in use by another sedtemp run \(pid {os.getpid()} on "):
-            OutputLock(tmp_path).__enter__()
+    match = rf"is in use by another sedtemp run \(pid {os.getpid()} on "
+    with OutputLock(tmp_path), pytest.raises(ConfigError, match=match):
+        OutputLock(tmp_path).__enter__()
     with OutputLock(tmp_path) as again:  # released on exit: free again, and not stale
         assert again.stale is None
 
