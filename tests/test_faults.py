@@ -257,7 +257,7 @@ def test_workers_end_when_main_process_is_killed(tmp_path):
     proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + 60
     workers = set()
-    while time.monotonic() < deadline and len(workers) < 2:  # forkserver and its worker
+    while time.monotonic() < deadline and len(workers) < 3:  # resource tracker, forkserver, worker
         time.sleep(0.3)
         workers = _descendants(proc.pid)
     assert workers, "no worker process started"
@@ -270,3 +270,31 @@ def test_workers_end_when_main_process_is_killed(tmp_path):
         time.sleep(0.3)
         alive = {p for p in alive if _running(p)}
     assert not alive, f"worker processes {sorted(alive)} outlived the killed main process"
+
+
+def test_ctrl_c_prints_one_line(tmp_path):
+    """SIGINT to `sedtemp run` with a process pool: one line on stderr, no worker tracebacks."""
+    import subprocess
+    import sys
+
+    cat = invented_catalog(2, 21)
+    cat.write(tmp_path / "catalog.ecsv")
+    bands = "".join(f'[bands.b{w}]\nflux = "F{w}"\nerror = "E{w}"\ntophat = {{ center = "{w} um", width = 0.3 }}\n'
+                    for w in (70, 160, 250, 350, 500))
+    (tmp_path / "wf.toml").write_text(
+        '[run]\nexecutor = "process"\nworkers = 1\nchunk_size = 1\n[catalog]\npath = "catalog.ecsv"\n'
+        'id_column = "name"\ndistance = "400 pc"\n' + bands +
+        '[fit]\nmethod = "mcmc"\nn_walkers = 16\ness_target = 100000\nmax_steps = 10000000\n'
+        '[output]\nplots = false\nsource_plots = "none"\n')
+    # a session of its own, so that SIGINT can go to its whole process group, as a terminal's Ctrl-C does
+    proc = subprocess.Popen([sys.executable, "-m", "sedtemp", "run", str(tmp_path / "wf.toml"), "--quiet"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    deadline = time.monotonic() + 60
+    # resource tracker, forkserver and the worker, which then starts its (endless) chunk
+    while time.monotonic() < deadline and len(_descendants(proc.pid)) < 3:
+        time.sleep(0.3)
+    time.sleep(2.0)
+    os.killpg(proc.pid, signal.SIGINT)  # main process, forkserver and worker, like Ctrl-C
+    _, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130
+    assert err.strip().splitlines() == ["sedtemp: interrupted; run the same command again to resume"], err
