@@ -31,7 +31,13 @@ from .batch import empty_results, run_batch
 from .catalog import MappedCatalog, map_catalog, read_catalog
 from .config import Workflow
 from .schema import DRAW_PREFIX, FIT_FLAGS_COLUMN, STATUS_OK, assemble
-from .stages import compare_stage, predict_stage, prediction_beta, process_chunk
+from .stages import (
+    column_rows,
+    compare_stage,
+    predict_stage,
+    prediction_beta,
+    process_chunk,
+)
 
 __all__ = ["compare", "fit", "predict", "run"]
 
@@ -90,8 +96,7 @@ def predict(table, workflow: Workflow, *, fits=None) -> Table:
     cols, failures = predict_stage(workflow, mapped, prediction_beta(workflow, rows), np.ones(n, bool))
     for i, why in failures.items():
         status[i], reason[i] = "failed", why
-    part = [{k: v[i] for k, v in cols.items()} for i in range(n)]
-    return _public(assemble(mapped, [part], status, reason, workflow=workflow))
+    return _public(assemble(mapped, [column_rows(cols, n)], status, reason, workflow=workflow))
 
 
 def compare(table, workflow: Workflow, *, fits) -> Table:
@@ -119,11 +124,11 @@ def compare(table, workflow: Workflow, *, fits) -> Table:
     active = (status == STATUS_OK) & np.all(np.isfinite(T), axis=1)
     flags = [str(v) for v in fits[FIT_FLAGS_COLUMN]] if FIT_FLAGS_COLUMN in fits.colnames else None
     flags = None if flags is None else [("" if f == "none" else f) for f in flags]
-    rows, failures = compare_stage(workflow, mapped, T, arr("beta"), mass_draws=arr("log10_mass"),
+    cols, failures = compare_stage(workflow, mapped, T, arr("beta"), mass_draws=arr("log10_mass"),
                                    fit_flags=flags, active=active)
     for i, why in failures.items():
         status[i], reason[i] = "failed", why
-    return _public(assemble(mapped, [rows], status, reason, workflow=workflow))
+    return _public(assemble(mapped, [column_rows(cols, n)], status, reason, workflow=workflow))
 
 
 def run(table, workflow: Workflow, *, executor=None, output_dir=None, progress=False) -> Table:

@@ -39,12 +39,17 @@ from .schema import STATUS_FAILED, STATUS_OK, STATUS_SKIPPED, assemble
 
 __all__ = [
     "FitOutput",
+    "column_rows",
     "compare_stage",
+    "draws_arrays",
     "fit_method",
     "fit_stage",
+    "flux_scaling",
     "grid_for",
     "mcmc_result",
+    "model_for",
     "predict_stage",
+    "prediction_beta",
     "process_chunk",
     "source_field",
     "source_streams",
@@ -294,8 +299,9 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, m
 
     Returns
     -------
-    columns : list of dict
-        One dict of comparison values per source (empty where not active).
+    columns : dict of str -> ndarray (n,)
+        The comparison columns (as :meth:`Comparison.columns` names them);
+        NaN / None where not active or failed.
     failures : dict of int -> str
     """
     from ..compare import compare_draws
@@ -323,7 +329,13 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, m
         except Exception as err:  # noqa: BLE001 - recorded per source
             err.add_note(f"while comparing source {mapped.keys[i]!r}")
             failures[i] = f"compare: {type(err).__name__}: {err}"
-    return rows, failures
+    names = list(dict.fromkeys(k for r in rows for k in r))
+    return {k: np.array([r.get(k) for r in rows], dtype=object) for k in names}, failures
+
+
+def column_rows(columns: dict, n: int) -> list[dict]:
+    """Columns (name -> array (n,)) -> one dict per source, as :func:`schema.assemble` takes them."""
+    return [{k: v[i] for k, v in columns.items()} for i in range(n)]
 
 
 def _apply(failures, status, reason):
@@ -362,12 +374,12 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
     if "predict" in stages and has_field:
         cols, failures = predict_stage(wf, mapped, prediction_beta(wf, fit.rows), ok)
         _apply(failures, fit.status, fit.reason)
-        parts.append([{k: v[i] for k, v in cols.items()} for i in range(len(mapped))])
+        parts.append(column_rows(cols, len(mapped)))
     if "compare" in stages and has_field and wf.compare["enabled"]:
         arrays = draws_arrays(fit.draws, wf.fit["n_draws"])
         active = (fit.status == STATUS_OK) & np.array([d is not None for d in fit.draws], bool)
-        rows, failures = compare_stage(wf, mapped, arrays["T"], arrays["beta"], mass_draws=arrays["log10_mass"],
+        cols, failures = compare_stage(wf, mapped, arrays["T"], arrays["beta"], mass_draws=arrays["log10_mass"],
                                        fit_flags=[r.get("flags", "") for r in fit.rows], active=active)
         _apply(failures, fit.status, fit.reason)
-        parts.append(rows)
+        parts.append(column_rows(cols, len(mapped)))
     return assemble(mapped, parts, fit.status, fit.reason, draws=fit.draws, n_keep=n_keep, workflow=wf)
