@@ -12,7 +12,12 @@ On the same simulated sources it measures
 2. ``fit_source`` (band-integrated fluxes, calibration covariance);
 3. grid mode (``GridPosterior.summarise`` in chunks) over a 10,000-source catalogue;
 4. ``equilibrium_temperature`` over 10^6 field strengths;
-5. batch throughput (``sedtemp.batch.run_batch``, grid mode) with 1 and 2 workers;
+5. batch throughput (``sedtemp.pipeline.run_batch``, grid mode) with 1 and 2 workers;
+6. end to end (fit -> predict -> compare) on the demo workflow's settings, one
+   worker, against the hand-written per-source script of the same three steps
+   (``baseline.end_to_end_one``), with the share of predict + compare;
+7. ``sedtemp run`` on 2 workers over 10^6 generated rows (``--quick``: 10^4),
+   its wall time and peak memory (``ru_maxrss`` of the largest process);
 
 and prints a table (time per source, sources/s, ESS/s, ratio against the
 baseline measured in this run, target, met?), the agreement of the grid and
@@ -34,28 +39,28 @@ import os
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
-import argparse  # noqa: E402
-import importlib  # noqa: E402
-import json  # noqa: E402
-import logging  # noqa: E402
-import platform  # noqa: E402
-import resource  # noqa: E402
-import subprocess  # noqa: E402
-import sys  # noqa: E402
-import time  # noqa: E402
-import warnings  # noqa: E402
-from pathlib import Path  # noqa: E402
+import argparse
+import importlib
+import json
+import logging
+import platform
+import resource
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
 
-import astropy.units as u  # noqa: E402
-import emcee  # noqa: E402
-import numpy as np  # noqa: E402
-from astropy.table import Table  # noqa: E402
+import astropy.units as u
+import emcee
+import numpy as np
+from astropy.table import Table
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-import baseline  # noqa: E402
+import baseline
 
-from sedtemp import Band, BandSet, Calibration, ModifiedBlackbody, fit_source  # noqa: E402
-from sedtemp.fit.grid import GridPosterior  # noqa: E402
+from sedtemp import Band, BandSet, Calibration, ModifiedBlackbody, fit_source
+from sedtemp.fit.grid import GridPosterior
 
 WAVELENGTHS_UM = (70, 100, 160, 250, 350, 500)
 CAL_GROUPS = {"short": (["b70", "b100", "b160"], 0.07), "long": (["b250", "b350", "b500"], 0.055)}
@@ -191,7 +196,7 @@ def bench_teq(n):
 
 
 def _workflow(n_workers, chunk_size):
-    from sedtemp.config import parse_workflow
+    from sedtemp.pipeline import parse_workflow
 
     data = {
         "run": {"seed": 3, "executor": "process", "workers": n_workers, "chunk_size": chunk_size},
@@ -208,8 +213,8 @@ def _workflow(n_workers, chunk_size):
 
 def bench_batch(flux, err, n_workers, chunk_size):
     try:
-        batch = importlib.import_module("sedtemp.batch")
-        catalog = importlib.import_module("sedtemp.catalog")
+        batch = importlib.import_module("sedtemp.pipeline")
+        catalog = batch
     except ImportError as err:
         return {"skipped": f"skipped: module not available ({err.name})"}
     wf = _workflow(n_workers, chunk_size)
@@ -224,6 +229,86 @@ def bench_batch(flux, err, n_workers, chunk_size):
     n_ok = int(np.sum(np.asarray(res["status"]) == "ok")) if "status" in res.colnames else len(res)
     return {"time": dt / len(flux), "rate": len(flux) / dt, "res": res,
             "detail": f"{len(flux)} sources, chunk {chunk_size}, {n_ok} ok, pool start included"}
+
+
+# ----------------------------------------------------- end to end (demo workflow)
+def _demo():
+    from importlib import resources
+
+    from sedtemp.pipeline import load_workflow, read_catalog
+
+    with resources.as_file(resources.files("sedtemp") / "data" / "demo" / "demo.toml") as path:
+        wf = load_workflow(path)
+        tab = read_catalog(wf.path(wf.catalog["path"]))
+    wf.run.update(executor="serial", workers=1)
+    wf.output.update(plots=False, source_plots="none", keep_draws=False)
+    return wf, tab
+
+
+def bench_end_to_end(n, n_base):
+    """sedtemp fit -> predict -> compare over n demo sources (one worker) vs the hand-written script."""
+    from sedtemp.pipeline import map_catalog, process_chunk, run_batch
+
+    wf, tab = _demo()
+    mapped = map_catalog(tab[:n], wf)
+    process_chunk(wf, mapped.take([0]), stages=("fit",))  # warm-up: grid tables, imports
+    t0 = time.perf_counter()
+    res = run_batch(mapped, wf)
+    dt = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    for i in range(0, n, wf.run["chunk_size"]):
+        process_chunk(wf, mapped.take(np.arange(i, min(n, i + wf.run["chunk_size"]))), stages=("fit",))
+    dt_fit = time.perf_counter() - t0
+    ok = int(np.sum(np.asarray(res["status"]) == "ok"))
+    # the hand-written script on the same kind of source: six bands, fit, T_eq per draw, P(T > T_eq)
+    nu = baseline.C / (np.array([70.0, 110.0, 170.0, 250.0, 350.0, 500.0]) * 1e-6)
+    truth = baseline.modbb(nu, -14.0, 20.0, 1.8)
+    secs = []
+    for k in range(n_base):
+        e = 0.05 * truth
+        f = truth + e * np.random.default_rng(k).standard_normal(nu.size)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # emcee's short-chain and curve_fit hints
+            secs.append(baseline.end_to_end_one(nu, f, e, 1.0, seed=k)["seconds"])
+    base_rate = 1.0 / np.mean(secs)
+    return {"time": dt / n, "rate": n / dt, "base_rate": base_rate, "share": max(0.0, 1.0 - dt_fit / dt),
+            "detail": f"{n} demo sources ({ok} ok), one worker: {n / dt:.1f} src/s; hand-written script "
+                      f"{base_rate:.3f} src/s ({n_base} source(s)); predict + compare {100 * max(0.0, 1 - dt_fit / dt):.0f} % "
+                      "of the time"}
+
+
+def _write_big_catalog(path, n_rows, seed):
+    bands, model = make_bands(), make_model()
+    _, flux, err = simulate(model, bands, n_rows, np.random.default_rng(seed))
+    tab = Table({"id": np.arange(n_rows)})
+    for j, w in enumerate(WAVELENGTHS_UM):
+        tab[f"f{w}"] = flux[:, j] * u.Jy
+        tab[f"e{w}"] = err[:, j] * u.Jy
+    tab.write(path, format="fits", overwrite=True)
+
+
+def bench_sedtemp_run(n_rows, workdir):
+    """``sedtemp run`` (the command, in a subprocess) on 2 workers over n_rows rows: time and peak memory."""
+    workdir.mkdir(parents=True, exist_ok=True)
+    cat = workdir / "big.fits"
+    _write_big_catalog(cat, n_rows, 5)
+    bands = "\n".join(f'[bands.b{w}]\nflux = "f{w}"\nerror = "e{w}"\ncalibration = "{"short" if w < 200 else "long"}"\n'
+                      f'tophat = {{ center = "{w} um", width = 0.3 }}\n' for w in WAVELENGTHS_UM)
+    (workdir / "big.toml").write_text(
+        f'[run]\nseed = 1\nexecutor = "process"\nworkers = 2\nchunk_size = 512\n\n'
+        f'[catalog]\npath = "big.fits"\nid_column = "id"\ndistance = "{DISTANCE_PC} pc"\n\n{bands}\n'
+        f'[calibration]\nshort = {CAL_GROUPS["short"][1]}\nlong = {CAL_GROUPS["long"][1]}\n\n'
+        '[output]\ndirectory = "out"\nplots = false\nsource_plots = "none"\n')
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "sedtemp", "run", str(workdir / "big.toml"), "--restart",
+                           "--quiet"], capture_output=True, text=True, check=False)
+    dt = time.perf_counter() - t0
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    if proc.returncode:
+        return {"skipped": f"sedtemp run failed: {proc.stderr.strip()[-300:]}"}
+    return {"time": dt / n_rows, "rate": n_rows / dt, "peak_mb": peak,
+            "detail": f"{n_rows:,d} rows, 2 workers: {dt:.1f} s ({n_rows / dt:.0f} rows/s), peak RSS of the "
+                      f"largest process {peak:.0f} MB"}
 
 
 # ------------------------------------------------------------- memory
@@ -315,7 +400,7 @@ def print_table(rows):
         if len(line) != len(head):
             print(f"{line[0]:<{widths[0]}}  {line[1]} (target {line[2]})")
             continue
-        print("  ".join(f"{str(x):<{w}}" if i == 0 else f"{str(x):>{w}}" for i, (x, w) in enumerate(zip(line, widths))))
+        print("  ".join(f"{x!s:<{w}}" if i == 0 else f"{x!s:>{w}}" for i, (x, w) in enumerate(zip(line, widths))))
         if k == 0:
             print("  ".join("-" * w for w in widths))
 
@@ -331,6 +416,7 @@ def main(argv=None):
                     help="catalogue sizes of the peak-memory runs (comma-separated)")
     ap.add_argument("--profile", action="store_true", help="cProfile fit_source and grid mode instead")
     ap.add_argument("--memory-child", type=int, default=None, help=argparse.SUPPRESS)
+    ap.add_argument("--workdir", default="benchmark-work", help="folder of the `sedtemp run` benchmark files")
     args = ap.parse_args(argv)
     n_t, n_beta = (0, 0) if args.memory_grid == "default" else map(int, args.memory_grid.split("x"))
     if args.memory_child is not None:
@@ -364,6 +450,11 @@ def main(argv=None):
     print(f"[5] batch 1 worker    {b1.get('detail', b1.get('skipped'))}", flush=True)
     b2 = bench_batch(flux[:n_batch], err[:n_batch], 2, 64)
     print(f"[5] batch 2 workers   {b2.get('detail', b2.get('skipped'))}", flush=True)
+    n_e2e, n_e2e_base, n_big = (20, 1, 10**4) if q else (100, 2, 10**6)
+    e2e = bench_end_to_end(n_e2e, n_e2e_base)
+    print(f"[6] end to end        {e2e['detail']}", flush=True)
+    big = bench_sedtemp_run(n_big, Path(args.workdir))
+    print(f"[7] sedtemp run       {big.get('detail', big.get('skipped'))}", flush=True)
     mem = bench_memory(mem_rows, args.chunk_size, n_t, n_beta)
     qa = quantile_agreement(mc["fits"], gr["cols"])
 
@@ -392,6 +483,16 @@ def main(argv=None):
         rows.append({"name": "batch, 2 workers (grid)", "time": b2["time"],
                      "ratio": f"{base['time'] / b2['time']:.0f}x; {speed:.2f}x 1 worker",
                      "target": ">= 1.8x 1 worker", "met": speed >= TARGETS["batch_speedup"]})
+    rows.append({"name": "end to end (demo, 1 worker)", "time": e2e["time"],
+                 "ratio": f"{e2e['rate'] / e2e['base_rate']:.0f}x sources/s; predict+compare "
+                          f"{100 * e2e['share']:.0f} %", "target": ">= 1000x; <= 25 %",
+                 "met": e2e["rate"] / e2e["base_rate"] >= 1000 and e2e["share"] <= 0.25})
+    if "skipped" in big:
+        rows.append({"name": "sedtemp run (2 workers)", "skipped": big["skipped"], "target": "10^6 rows < 1 h"})
+    else:
+        rows.append({"name": f"sedtemp run, {n_big:.0e} rows", "time": big["time"],
+                     "ratio": f"peak {big['peak_mb']:.0f} MB", "target": "10^6 rows < 1 h",
+                     "met": big["rate"] * 3600 >= 10**6})
     print()
     print_table(rows)
     worst = max(qa.values())

@@ -5,8 +5,7 @@ radiative-equilibrium temperature of the dust in a modelled radiation field,
 and compare the two.
 """
 
-from importlib.metadata import PackageNotFoundError, version
-
+from ._version import __version__
 from .bands import Band, BandSet
 from .errors import (
     CatalogError,
@@ -26,10 +25,6 @@ from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
 from .planck import planck_nu
 from .priors import Gaussian, LogUniform, Prior, Uniform, UniformAmplitude
 
-try:
-    __version__ = version("sedtemp")
-except PackageNotFoundError:  # running from a source tree without install
-    __version__ = "0+unknown"
 
 __all__ = [
     "__version__",

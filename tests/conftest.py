@@ -3,7 +3,6 @@
 import astropy.units as u
 import numpy as np
 import pytest
-from astropy.table import Table
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
@@ -43,25 +42,22 @@ def source(model, bands):
     return f[0], err[0]
 
 
-#: Bands of the invented catalogue used by the pipeline and CLI tests.
-CATALOG_WAVE = (70, 160, 250, 350, 500)
+from invented import CATALOG_WAVE, catalog_workflow_data, invented_catalog
 
 
-def invented_catalog(n, seed, unit=u.Jy):
-    """Invented sources (test data only): modified blackbodies at 400 pc, 8 % noise.
+@pytest.fixture(scope="session")
+def make_catalog():
+    """The invented-catalogue factory :func:`invented_catalog` as a fixture (no ``from conftest import``)."""
+    return invented_catalog
 
-    Columns ``name``, ``F<w>`` and ``E<w>`` (flux and error in ``unit``) for the
-    top-hat bands of CATALOG_WAVE.
-    """
-    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in CATALOG_WAVE])
-    rng = np.random.default_rng(seed)
-    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
-    f = (bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta))
-         * (u.W / u.m**2 / u.Hz)).to_value(unit)
-    e = 0.08 * f
-    t = Table()
-    t["name"] = [f"S{i:03d}" for i in range(n)]
-    for j, w in enumerate(CATALOG_WAVE):
-        t[f"F{w}"] = (f[:, j] + e[:, j] * rng.standard_normal(n)) * unit
-        t[f"E{w}"] = e[:, j] * unit
-    return t
+
+@pytest.fixture(scope="session")
+def catalog_wave():
+    """Wavelengths (um) of the invented catalogue's top-hat bands."""
+    return CATALOG_WAVE
+
+
+@pytest.fixture(scope="session")
+def workflow_data():
+    """Factory of workflow mappings for the invented catalogue (see :func:`catalog_workflow_data`)."""
+    return catalog_workflow_data

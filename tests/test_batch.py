@@ -10,11 +10,12 @@ from astropy.table import Table
 
 from sedtemp import pipeline
 from sedtemp.bands import Band, BandSet
-from sedtemp.batch import InlineExecutor, run_batch
-from sedtemp.catalog import map_catalog
-from sedtemp.config import parse_workflow
 from sedtemp.errors import ConfigError
 from sedtemp.models import ModifiedBlackbody
+from sedtemp.pipeline import stages
+from sedtemp.pipeline.batch import InlineExecutor, run_batch
+from sedtemp.pipeline.catalog import map_catalog
+from sedtemp.pipeline.config import parse_workflow
 
 WAVE = (70, 160, 250, 350, 500)
 
@@ -92,19 +93,22 @@ def test_grid_rows_equal_direct_grid_posterior(reference, catalog):
     """A row equals GridPosterior.summarise on that source alone with its own seed (exact)."""
     wf = make_workflow()
     m = map_catalog(catalog, wf)
-    grid = pipeline._grid_for(wf, 0.0, m.distance_m[5])
+    grid = stages.grid_for(wf, 0.0, m.distance_m[5])
     seq, _ = pipeline.source_seed(11, "S005").spawn(2)
     cols, _ = grid.summarise(m.flux[5:6], m.err[5:6], m.limit_only[5:6], n_draws=200,
                              rng=np.random.default_rng(seq), keep_draws=True)
     for key in ("T_median", "T_p16", "beta_p84", "log10_mass_median", "ppp", "chi2_map"):
-        assert reference[key][5] == cols[key][0], key
+        # the run fits blocks of sources; a block's matrix products may round differently
+        # from a one-source call (BLAS), hence the stated 1e-10 relative tolerance
+        assert reference[key][5] == pytest.approx(cols[key][0], rel=1e-10), key
 
 
 @pytest.mark.parametrize("run", [{"chunk_size": 5, "executor": "process", "workers": 1},
                                  {"chunk_size": 3, "executor": "process", "workers": 2}])
 def test_same_results_any_chunking_and_worker_count(reference, catalog, run):
     wf = make_workflow(**run)
-    _same(run_batch(map_catalog(catalog, wf), wf, keep_draws=True), reference)
+    # results may not depend on chunking or worker count beyond 1e-10 relative (README)
+    _same(run_batch(map_catalog(catalog, wf), wf, keep_draws=True), reference, rtol=1e-10)
 
 
 def test_dask_local_cluster_same_results(reference, catalog):
@@ -127,7 +131,8 @@ def test_resume_from_checkpoints(tmp_path, reference, catalog):
     again = run_batch(m, wf, output_dir=tmp_path)
     _same(again, full)
     _same(full, reference[[c for c in reference.colnames if not c.startswith("draws_")]])
-    assert sorted(p.name for p in (tmp_path / "parts").iterdir()) == [p.name for p in parts]
+    assert sorted(p.name for p in (tmp_path / "parts").glob("part-*")) == [p.name for p in parts]
+    assert not list((tmp_path / "parts").glob(".tmp-*"))  # the half-written file is removed
     on_disk = Table.read(tmp_path / "results.ecsv")
     assert on_disk["name"].tolist() == catalog["name"].tolist()  # every source exactly once
     np.testing.assert_array_equal(on_disk["T_median"], full["T_median"])
@@ -140,21 +145,22 @@ def test_other_workflow_in_same_directory_refused(tmp_path, catalog):
     wf = make_workflow()
     run_batch(map_catalog(catalog[:4], wf), wf, output_dir=tmp_path)
     other = make_workflow(seed=12)
-    with pytest.raises(ConfigError, match=r"holds a run of a different workflow; use another \[output\] directory"):
+    with pytest.raises(ConfigError, match=r"holds checkpoints of a run with other inputs; changed: workflow "
+                       r"\(\[run\] seed\)\. Use another \[output\] directory"):
         run_batch(map_catalog(catalog[:4], other), other, output_dir=tmp_path)
     res = run_batch(map_catalog(catalog[:4], other), other, output_dir=tmp_path, restart=True)
     assert len(res) == 4
 
 
 def test_failed_source_has_reason_and_run_goes_on(monkeypatch, catalog):
-    real = pipeline._fit_grid
+    real = stages._grid_block
 
-    def flaky(wf, mapped, i, rng):
-        if mapped.keys[i] == "S002":
+    def flaky(wf, mapped, idx, out, digest):
+        if "S002" in mapped.keys[idx]:
             raise FloatingPointError("invented failure")
-        return real(wf, mapped, i, rng)
+        return real(wf, mapped, idx, out, digest)
 
-    monkeypatch.setattr(pipeline, "_fit_grid", flaky)
+    monkeypatch.setattr(stages, "_grid_block", flaky)
     wf = make_workflow()
     res = run_batch(map_catalog(catalog[:5], wf), wf, executor=InlineExecutor())
     assert res["status"].tolist() == ["ok", "ok", "failed", "ok", "ok"]
@@ -186,7 +192,7 @@ def test_draws_written_to_hdf5(tmp_path, catalog):
 
 # ------------------------------------------------------------ per-source plots
 def test_select_plot_sources():
-    from sedtemp.batch import select_plot_sources
+    from sedtemp.pipeline.batch import select_plot_sources
 
     tab = Table({"name": ["a", "b", "c", "d", "e"], "status": ["ok", "ok", "ok", "failed", "ok"],
                  "flags": ["", "T_at_prior_high", "", "", ""],
@@ -213,15 +219,16 @@ def test_source_plots_of_flagged_sources_with_cap(tmp_path, catalog):
     raw["output"].update(source_plots="flagged", max_source_plots=2)
     wf = parse_workflow(raw)
     res = run_batch(map_catalog(catalog[:6], wf), wf, output_dir=tmp_path)
-    flagged = [str(k) for k, f in zip(res["name"], res["flags"]) if f]
+    flagged = [str(k) for k, f in zip(res["name"], res["fit_flags"]) if f != "none"]
     assert len(flagged) > 2  # otherwise the cap is not exercised
     files = sorted(p.name for p in (tmp_path / "sources").iterdir())
-    assert files == sorted(f"{k}_{kind}.{ext}" for k in flagged[:2] for kind in ("corner", "sed", "trace")
+    # grid sources: corner and SED from the run's grid draws; no chain, so no trace and no refit
+    assert files == sorted(f"{k}_{kind}.{ext}" for k in flagged[:2] for kind in ("corner", "sed")
                            for ext in ("pdf", "png"))  # the first two flagged, in catalogue order
     assert all((tmp_path / "sources" / f).stat().st_size > 0 for f in files)
     rep = json.loads((tmp_path / "results-report.json").read_text())["plots"]["sources"]
     assert rep == {"choice": "flagged", "selected": len(flagged), "made": 2, "cap": 2, "cap_reached": True,
-                   "directory": "sources", "failed": []}
+                   "directory": "sources", "failed": [], "refits": 0}
     text = (tmp_path / "results-report.txt").read_text()
     assert f"source plots (flagged): 2 of {len(flagged)} flagged source(s) plotted in sources/" in text
     assert (f"cap reached: [output] max_source_plots = 2; {len(flagged) - 2} flagged source(s) not plotted "
@@ -235,7 +242,7 @@ def test_source_plots_of_flagged_sources_with_cap(tmp_path, catalog):
 
 
 def test_keep_draws_without_h5py_fails_before_fitting(tmp_path, catalog, monkeypatch):
-    from sedtemp.batch import check_optional_packages
+    from sedtemp.pipeline.batch import check_optional_packages
 
     monkeypatch.setitem(sys.modules, "h5py", None)  # `import h5py` now raises ImportError
     wf = make_workflow()

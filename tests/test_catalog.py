@@ -7,9 +7,9 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-from sedtemp.catalog import map_catalog, read_catalog, source_key, write_table
-from sedtemp.config import parse_workflow
 from sedtemp.errors import CatalogError
+from sedtemp.pipeline.catalog import map_catalog, read_catalog, source_key, write_table
+from sedtemp.pipeline.config import parse_workflow
 
 _SI = u.W / u.m**2 / u.Hz
 BANDS = ("b160", "b250", "b350")

@@ -8,8 +8,13 @@ import numpy as np
 import pytest
 
 from sedtemp import fields
-from sedtemp.config import load_workflow, lookup_model, parse_quantity, parse_workflow
 from sedtemp.errors import ConfigError
+from sedtemp.pipeline.config import (
+    load_workflow,
+    lookup_model,
+    parse_quantity,
+    parse_workflow,
+)
 from sedtemp.priors import Gaussian, Uniform
 
 BASE = """\
@@ -154,13 +159,12 @@ high = 4.0
     assert isinstance(pr["beta"], Gaussian) and pr["beta"].mean == 1.8 and pr["beta"].high == 4.0
 
 
-def test_prior_kind_and_arguments_checked(tmp_path):
-    wf = load_workflow(_write(tmp_path, BASE + '\n[priors.T]\nkind = "flat"\nlow = 1\nhigh = 2\n'))
-    with pytest.raises(ConfigError, match=r"\[priors\.T\] kind must be one of"):
-        wf.build_prior()
-    wf = load_workflow(_write(tmp_path, BASE + '\n[priors.T]\nkind = "gaussian"\nmean = 1\n'))
-    with pytest.raises(ConfigError, match=r"\[priors\.T\] kind 'gaussian' needs \['sigma'\]"):
-        wf.build_prior()
+def test_prior_kind_and_arguments_checked_when_read(tmp_path):
+    # checked when the workflow is read (so `sedtemp check` fails), not at fitting time
+    with pytest.raises(ConfigError, match=r"line 21: \[priors\.T\] 'kind': must be one of \['gaussian'"):
+        load_workflow(_write(tmp_path, BASE + '\n[priors.T]\nkind = "flat"\nlow = 1\nhigh = 2\n'))
+    with pytest.raises(ConfigError, match=r"\[priors\.T\]: kind 'gaussian' needs \['sigma'\]"):
+        load_workflow(_write(tmp_path, BASE + '\n[priors.T]\nkind = "gaussian"\nmean = 1\n'))
 
 
 def test_model_built_with_distance(tmp_path):
@@ -206,9 +210,15 @@ def test_entry_point_model(tmp_path, monkeypatch):
     _fake_distribution(tmp_path, "sedtemp.models", "flat", "plugin_model_mod",
                        "from sedtemp.models import ModifiedBlackbody\nclass Thing(ModifiedBlackbody):\n    pass\n")
     monkeypatch.syspath_prepend(str(tmp_path))
+    from sedtemp.pipeline import config
+
+    config._registered.cache_clear()  # names are resolved once per process
+    lookup_model.cache_clear()
     cls = lookup_model("flat")
     assert cls.__name__ == "Thing" and cls.__module__ == "plugin_model_mod"
     sys.modules.pop("plugin_model_mod", None)
+    config._registered.cache_clear()
+    lookup_model.cache_clear()
 
 
 def test_entry_point_field(tmp_path, monkeypatch):

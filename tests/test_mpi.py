@@ -42,13 +42,13 @@ def test_mpi_run_equals_serial_run(tmp_path):
     cmd += [sys.executable, "-m", "mpi4py.futures", "-m", "sedtemp", "run", str(wf_mpi), "--quiet",
             "--output", str(tmp_path / "mpi")]
     env = {k: v for k, v in os.environ.items() if not k.startswith(("OMPI_", "PMIX_", "PMI_"))}
-    done = subprocess.run(cmd, timeout=600, capture_output=True, text=True, env=env)
+    done = subprocess.run(cmd, timeout=600, capture_output=True, text=True, env=env, check=False)
     assert done.returncode == 0, done.stderr[-2000:]
     subprocess.run([sys.executable, "-m", "sedtemp", "run", str(wf_serial), "--quiet",
                     "--output", str(tmp_path / "serial")], check=True, timeout=600, capture_output=True)
     a = Table.read(tmp_path / "mpi" / "results.ecsv")
     b = Table.read(tmp_path / "serial" / "results.ecsv")
     assert len(a) == len(b) == 12 and list(a["src"]) == list(b["src"])
-    for col in ("T_median", "beta_p16", "T_eq", "p_warmer"):
+    for col in ("T_median", "beta_p16", "T_eq_point", "p_warmer"):
         np.testing.assert_allclose(np.asarray(a[col]), np.asarray(b[col]), rtol=1e-10, equal_nan=True)
-    assert list(a["flag"]) == list(b["flag"])
+    assert list(a["heating_class"]) == list(b["heating_class"])

@@ -1,0 +1,45 @@
+"""Invented test data shared by the pipeline and CLI tests (imported as ``invented``; not a conftest)."""
+
+import astropy.units as u
+import numpy as np
+from astropy.table import Table
+
+from sedtemp.bands import Band, BandSet
+from sedtemp.models import ModifiedBlackbody
+
+#: Bands of the invented catalogue used by the pipeline and CLI tests.
+CATALOG_WAVE = (70, 160, 250, 350, 500)
+
+
+def invented_catalog(n, seed, unit=u.Jy):
+    """Invented sources (test data only): modified blackbodies at 400 pc, 8 % noise.
+
+    Columns ``name``, ``F<w>`` and ``E<w>`` (flux and error in ``unit``) for the
+    top-hat bands of CATALOG_WAVE.
+    """
+    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in CATALOG_WAVE])
+    rng = np.random.default_rng(seed)
+    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
+    f = (bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta))
+         * (u.W / u.m**2 / u.Hz)).to_value(unit)
+    e = 0.08 * f
+    t = Table()
+    t["name"] = [f"S{i:03d}" for i in range(n)]
+    for j, w in enumerate(CATALOG_WAVE):
+        t[f"F{w}"] = (f[:, j] + e[:, j] * rng.standard_normal(n)) * unit
+        t[f"E{w}"] = e[:, j] * unit
+    return t
+
+
+def catalog_workflow_data(**sections):
+    """Workflow mapping for the invented catalogue: five top-hat bands, 400 pc, a small grid."""
+    bands = {f"b{w}": {"flux": f"F{w}", "error": f"E{w}", "tophat": {"center": f"{w} um", "width": 0.3}}
+             for w in CATALOG_WAVE}
+    data = {"run": {"seed": 5, "executor": "serial", "chunk_size": 3},
+            "catalog": {"path": "catalog.ecsv", "id_column": "name", "distance": "400 pc"},
+            "bands": bands, "fit": {"n_T": 30, "n_beta": 20, "n_draws": 100},
+            "priors": {"T": {"kind": "uniform", "low": 5.0, "high": 60.0}},
+            "output": {"n_keep": 50, "plots": False, "source_plots": "none"}}
+    for name, values in sections.items():
+        data[name] = {**data.get(name, {}), **values}
+    return data
