@@ -18,7 +18,8 @@ from .errors import (
 from .fit import FitResult, fit_source, grid_posterior
 from .likelihood import Calibration
 from .models import ModifiedBlackbody, ThickModifiedBlackbody, TwoTemperatureModel
-from .compare import Comparison, compare, compare_draws, compare_table
+from .compare import Comparison, compare_draws, compare_table
+from .compare import compare as compare_fit
 from .equilibrium import equilibrium_temperature, implied_U
 from .opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
 from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
@@ -46,7 +47,7 @@ __all__ = [
     "Blackbody",
     "Tabulated",
     "equilibrium_temperature",
-    "compare",
+    "compare_fit",
     "compare_draws",
     "compare_table",
     "Comparison",

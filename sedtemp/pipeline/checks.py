@@ -57,6 +57,9 @@ def _check_output(s, where):
     cols = s["output"]["keep_columns"]
     if not all(isinstance(c, str) and c for c in cols):
         _fail(where, "output", "keep_columns", f"must be a list of column names, got {cols!r}")
+    if s["compare"]["opacity_uncertainty"] < 0:
+        _fail(where, "compare", "opacity_uncertainty",
+              f"is a fractional 1-sigma and cannot be negative, got {s['compare']['opacity_uncertainty']}")
     if s["field"]["uncertainty"] < 0:
         _fail(where, "field", "uncertainty",
               f"is a fractional 1-sigma and cannot be negative, got {s['field']['uncertainty']}")

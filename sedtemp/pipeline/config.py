@@ -58,7 +58,10 @@ named here.
     ``n_walkers`` (32), ``ess_target`` (400), ``max_steps`` (20000).
 ``[field]``
     ``A_V`` (float, mag) or ``A_V_column``; ``uncertainty`` (fractional
-    1-sigma of the field strength, default 0); ``projected`` (bool: star
+    1-sigma of the field strength, default 0); ``uncertainty_shared``
+    (bool, default false: true draws that factor once per draw index for the
+    whole catalogue, e.g. the U of one cloud, so catalogue counts carry it
+    as a common error); ``projected`` (bool: star
     separations are projected, i.e. lower limits on the true distance).
     ``[[field.components]]`` tables with ``kind`` ("isrf", "star", "cmb",
     "blackbody", "table" or a name in the entry-point group
@@ -69,7 +72,9 @@ named here.
     catalogue's ``ra_column``/``dec_column`` times the catalogue distance.
 ``[compare]``
     ``enabled`` (bool, default true), ``thresholds`` (table passed to
-    :func:`sedtemp.compare.compare_draws`).
+    :func:`sedtemp.compare.compare_draws`), ``opacity_uncertainty``
+    (fractional 1-sigma of kappa_FIR / kappa_abs propagated into T_eq,
+    default 0.3; 0 switches it off).
 ``[output]``
     ``directory`` (default "sedtemp-results"), ``name`` (default "results"),
     ``format`` ("ecsv" | "fits" | "votable" | "csv"), ``keep_draws`` (bool:
@@ -156,8 +161,8 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
             "n_beta": (int, 60), "n_draws": (int, 400), "n_walkers": (int, 32),
             "ess_target": (_NUM, 400), "max_steps": (int, 20000)},
     "field": {"A_V": (_NUM, 0.0), "A_V_column": (str, None), "uncertainty": (_NUM, 0.0),
-              "projected": (bool, False), "components": (list, [])},
-    "compare": {"enabled": (bool, True), "thresholds": (dict, {})},
+              "uncertainty_shared": (bool, False), "projected": (bool, False), "components": (list, [])},
+    "compare": {"enabled": (bool, True), "thresholds": (dict, {}), "opacity_uncertainty": (_NUM, 0.3)},
     "output": {"directory": (str, "sedtemp-results"), "name": (str, "results"),
                "format": (str, "ecsv"), "keep_draws": (bool, False), "n_keep": (int, 200),
                "plots": (bool, True), "source_plots": (str, "flagged"), "max_source_plots": (int, 20),

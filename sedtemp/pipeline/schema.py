@@ -104,6 +104,9 @@ _FIXED = [
                "uncertainty)", ".3f", "phys.temperature", 3),
     ColumnSpec("beta_for_T_eq", "", "f", "beta used for T_eq_point (fitted median or the model's)", ".3f",
                "phys.emissivity", 3),
+    ColumnSpec("opacity_extrapolated_fraction", "", "f", "fraction of the absorbed power taken where the "
+               "opacity law is extrapolated (a bare far-IR power law in the UV, or beyond a table)", ".3f",
+               None, 3),
     ColumnSpec("p_warmer", "", "f", "posterior probability that T_fit > T_eq", ".3f", "stat.probability", 4),
     ColumnSpec("stochastic_fraction", "", "f", "fraction of draws in which grains are stochastically heated",
                ".3f", None, 4),

@@ -240,29 +240,52 @@ def prediction_beta(wf: Workflow, fit_rows) -> np.ndarray:
     return np.where(np.isfinite(beta), beta, default)
 
 
+def _fields_of(mapped, idx, failures, stage):
+    """Per-source fields of the sources ``idx``; a source whose field cannot be built fails alone."""
+    fields, ok = [], []
+    for i in idx:
+        try:
+            fields.append(source_field(mapped, i))
+            ok.append(i)
+        except Exception as err:  # noqa: BLE001 - recorded per source
+            failures[i] = f"{stage}: {type(err).__name__}: {err}"
+    return fields, np.asarray(ok, dtype=int)
+
+
 def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active: np.ndarray):
-    """T_eq (K) of each active source's field at its ``beta`` (the loop a chunk call replaces).
+    """T_eq (K) of each active source's field at its ``beta``: one chunk call.
 
     Returns
     -------
     columns : dict of str -> ndarray (n,)
-        ``T_eq_point`` (K) and ``beta_for_T_eq``; NaN where not active or failed.
+        ``T_eq_point`` (K), ``beta_for_T_eq`` and ``opacity_extrapolated_fraction``;
+        NaN where not active or failed.
     failures : dict of int -> str
     """
-    from ..equilibrium import equilibrium_temperature
+    from ..equilibrium import predict_chunk
 
     n = len(mapped)
-    t_eq, beta_used = np.full(n, np.nan), np.full(n, np.nan)
-    failures = {}
+    cols = {"T_eq_point": np.full(n, np.nan), "beta_for_T_eq": np.full(n, np.nan),
+            "opacity_extrapolated_fraction": np.full(n, np.nan)}
+    failures: dict = {}
+    fields, idx = _fields_of(mapped, np.flatnonzero(active), failures, "predict")
+    if idx.size == 0:
+        return cols, failures
     opacity = wf.opacity()
-    for i in np.flatnonzero(active):
-        try:
-            t = equilibrium_temperature(source_field(mapped, i), opacity, beta=float(beta[i]))
-            t_eq[i], beta_used[i] = float(u.Quantity(t, u.K).value), float(beta[i])
-        except Exception as err:  # noqa: BLE001 - recorded per source
-            err.add_note(f"while predicting T_eq of source {mapped.keys[i]!r}")
+    try:
+        with warnings.catch_warnings():
+            # the fraction is a column (and the 'opacity_extrapolated' fit flag in
+            # the comparison); one warning per chunk would only repeat it
+            warnings.simplefilter("ignore", SedtempWarning)
+            res = predict_chunk(fields, opacity, beta[idx], details=True)
+    except Exception as err:  # noqa: BLE001 - the whole chunk failed: record it per source
+        for i in idx:
             failures[i] = f"predict: {type(err).__name__}: {err}"
-    return {"T_eq_point": t_eq, "beta_for_T_eq": beta_used}, failures
+        return cols, failures
+    cols["T_eq_point"][idx] = res["T_eq"]
+    cols["beta_for_T_eq"][idx] = beta[idx]
+    cols["opacity_extrapolated_fraction"][idx] = res["opacity_extrapolated_fraction"]
+    return cols, failures
 
 
 def draws_arrays(draws: list, n_draws: int, names=("T", "beta", "log10_mass")) -> dict:
@@ -282,9 +305,35 @@ def draws_arrays(draws: list, n_draws: int, names=("T", "beta", "log10_mass")) -
     return out
 
 
+def _field_uncertainty(wf: Workflow):
+    """The workflow's field uncertainty: None, a fraction, or a shared ScaleUncertainty."""
+    f = wf.field
+    if not f["uncertainty"]:
+        return None
+    if f["uncertainty_shared"]:
+        from ..compare import ScaleUncertainty
+
+        return ScaleUncertainty(1.0 + float(f["uncertainty"]), shared=True)
+    return float(f["uncertainty"])
+
+
+def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity):
+    from ..compare import compare_chunk
+
+    f = wf.field
+    seeds = [np.random.SeedSequence(int(source_streams(wf, mapped.keys[i])[1].generate_state(1)[0]))
+             for i in idx]
+    return compare_chunk(T, beta, fields, opacity, mass_draws=mass,
+                         field_uncertainty=_field_uncertainty(wf),
+                         opacity_uncertainty=float(wf.compare["opacity_uncertainty"]),
+                         projected=f["projected"], thresholds=wf.compare["thresholds"] or None,
+                         fit_flags=None if fit_flags is None else [fit_flags[i] for i in idx],
+                         seeds=seeds, run_seed=wf.run["seed"])
+
+
 def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, mass_draws=None,
                   fit_flags=None, active=None):
-    """The comparison of every active source's draws (the loop a chunk call replaces).
+    """The comparison of every active source's draws, one chunk call per draw count.
 
     Parameters
     ----------
@@ -301,36 +350,68 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, m
     -------
     columns : dict of str -> ndarray (n,)
         The comparison columns (as :meth:`Comparison.columns` names them);
-        NaN / None where not active or failed.
+        None where not active or failed.
     failures : dict of int -> str
-    """
-    from ..compare import compare_draws
 
+    Notes
+    -----
+    Sources are grouped by their number of finite draws (grid fits all have
+    ``n_draws``; MCMC fits may have fewer) and each group goes through
+    :func:`sedtemp.compare.compare_chunk`, which equals the per-source
+    :func:`~sedtemp.compare.compare_draws` with the same seed to 1e-10.
+    If a whole group fails, its sources are retried one by one so that only
+    the bad ones fail.
+    """
     n = len(mapped)
     active = np.ones(n, bool) if active is None else active
-    opacity, f = wf.opacity(), wf.field
-    rows, failures = [{} for _ in range(n)], {}
+    failures: dict = {}
+    fields, idx = _fields_of(mapped, np.flatnonzero(active), failures, "compare")
+    field_of = dict(zip(idx.tolist(), fields, strict=True))
+    opacity = wf.opacity()
     default_beta = _default_beta(wf)
-    for i in np.flatnonzero(active):
-        keep = np.isfinite(T_draws[i])
-        beta = beta_draws[i][keep] if beta_draws is not None else None
-        if beta is None or not np.all(np.isfinite(beta)):
-            beta = np.full(int(keep.sum()), default_beta)
-        mass = None
-        if wf.model["amplitude"] == "mass" and mass_draws is not None:
-            mass = 10.0 ** mass_draws[i][keep] * u.solMass
-        seed = int(source_streams(wf, mapped.keys[i])[1].generate_state(1)[0])
-        try:
-            comp = compare_draws(T_draws[i][keep] * u.K, beta, source_field(mapped, i), opacity,
-                                 mass_draws=mass, field_uncertainty=f["uncertainty"] or None,
-                                 projected=f["projected"], thresholds=wf.compare["thresholds"] or None,
-                                 fit_flags=None if fit_flags is None else fit_flags[i], seed=seed)
-            rows[i] = comp.columns()
-        except Exception as err:  # noqa: BLE001 - recorded per source
-            err.add_note(f"while comparing source {mapped.keys[i]!r}")
-            failures[i] = f"compare: {type(err).__name__}: {err}"
+    counts = np.isfinite(T_draws).sum(axis=1) if idx.size else np.zeros(n, int)
+    rows: list = [{} for _ in range(n)]
+    for m in np.unique(counts[idx]) if idx.size else []:
+        group = idx[counts[idx] == m]
+        _compare_groups(wf, mapped, group, int(m), T_draws, beta_draws, mass_draws, fit_flags,
+                        field_of, opacity, default_beta, rows, failures)
     names = list(dict.fromkeys(k for r in rows for k in r))
     return {k: np.array([r.get(k) for r in rows], dtype=object) for k in names}, failures
+
+
+def _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta):
+    T = np.stack([T_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+    beta = np.full_like(T, default_beta)
+    if beta_draws is not None:
+        b = np.stack([beta_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+        beta = np.where(np.isfinite(b), b, default_beta)
+    mass = None
+    if wf.model["amplitude"] == "mass" and mass_draws is not None:
+        mass = 10.0 ** np.stack([mass_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+    return T, beta, mass
+
+
+def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_flags, field_of,
+                    opacity, default_beta, rows, failures):
+    """Compare ``group`` in one call; on failure, one source at a time to find the bad ones."""
+    T, beta, mass = _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta)
+    fields = [field_of[i] for i in group]
+    with warnings.catch_warnings():
+        # a warning of the comparison is also a column or flag of its row
+        warnings.simplefilter("ignore", SedtempWarning)
+        try:
+            cols = _compare_group(wf, mapped, group, T, beta, mass, fit_flags, fields, opacity)
+        except Exception as err:  # noqa: BLE001 - retried per source below
+            if len(group) == 1:
+                err.add_note(f"while comparing source {mapped.keys[group[0]]!r}")
+                failures[int(group[0])] = f"compare: {type(err).__name__}: {err}"
+                return
+            for j in range(len(group)):
+                _compare_groups(wf, mapped, group[j:j + 1], m, T_draws, beta_draws, mass_draws, fit_flags,
+                                field_of, opacity, default_beta, rows, failures)
+            return
+    for j, i in enumerate(group):
+        rows[i] = {k: v[j] for k, v in cols.items()}
 
 
 def column_rows(columns: dict, n: int) -> list[dict]:
