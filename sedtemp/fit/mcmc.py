@@ -14,7 +14,8 @@ from scipy.stats import qmc
 
 from ..errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning, SedtempWarning
 from ..likelihood import Calibration, PhotometryLikelihood
-from ._data import prepare, require_bands, resolve_prior
+from ..photometry import prepare
+from ._data import require_bands, resolve_prior
 from .grid import GridPosterior, _axis_nodes, _prior_sd
 from .result import FitResult
 from .summary import POOR_FIT_PPP, trust_flags
