@@ -50,6 +50,9 @@ _N_BETA_DEFAULT = defaults.N_BETA
 _COARSE = 0.3
 #: A marginal sd below this many cell widths triggers the zoomed re-evaluation.
 _REFINE = 0.5
+#: Nodes whose log likelihood x prior is this far below a source's best node get
+#: a leading-order amplitude integral (their mass is < e^-40 relative).
+_RELEVANT = 40.0
 #: Half-width, in prior sd, of the beta grid when the beta prior is unbounded.
 _UNBOUNDED_SPAN = 5.0
 
@@ -274,10 +277,15 @@ class GridPosterior:
         iv = np.where(det, 1.0 / np.where(np.isfinite(err), err, 1.0) ** 2, 0.0)
         F = np.where(det, flux, 0.0)
         a_hat, sd, chi2, logdet = conditional(F, iv, nodes.g, self._masks, self._d2)
+        good = np.isfinite(a_hat) & (sd > 0) & np.isfinite(sd)
+        base = np.where(good, -0.5 * (chi2 + logdet), -np.inf) + nodes.log_prior
+        peak = base.max(axis=1, keepdims=True)
+        # the amplitude integral is computed exactly where the node can matter
+        # (within e^-40 of the source's best node; it varies by a few units at most)
+        relevant = base > peak - _RELEVANT
         with np.errstate(divide="ignore", invalid="ignore"):
-            logp = -0.5 * (chi2 + logdet) + self.amplitude.log_integral(np.where(np.isfinite(a_hat), a_hat, 0.0),
-                                                                        np.where(np.isfinite(sd) & (sd > 0), sd, 1.0))
-        logp = np.where(np.isfinite(sd) & (sd > 0), logp, -np.inf)
+            logp = base + self.amplitude.log_integral(np.where(good, a_hat, 0.0), np.where(good, sd, 1.0),
+                                                      relevant)
         if limit_only.any():
             a_use = np.clip(a_hat, self.amplitude.a_lo, self.amplitude.a_hi)
             g = nodes.g
@@ -285,7 +293,6 @@ class GridPosterior:
                 gj = g[..., j] if g.ndim == 3 else g[None, :, j]
                 z = (flux[:, j, None] - a_use * gj) / err[:, j, None]
                 logp = logp + np.where(limit_only[:, j, None], _log_ndtr(z), 0.0)
-        logp = logp + nodes.log_prior
         logp = np.where(np.isfinite(logp), logp, -np.inf)
         const = -0.5 * np.sum(np.where(det, np.log(np.where(det, err, 1.0) ** 2) + _LOG_2PI, 0.0), axis=1)
         return logp + const[:, None], a_hat, sd, chi2

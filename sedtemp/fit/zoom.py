@@ -40,7 +40,7 @@ _MAX_WIDEN = 3
 #: chi^2 by which the window's best node may exceed the optimiser's optimum
 #: (a node within half a cell of 0.5 sd of the optimum is within ~0.1).
 _CHI2_TOL = 1.0
-_N_ITER = 25
+_N_ITER = 20
 _STENCIL2 = np.array([(0, 0), (1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (1, -1), (-1, 1), (-1, -1)], float)
 _STENCIL1 = np.array([(0,), (1,), (-1,)], float)
 
@@ -119,6 +119,10 @@ def optimise(grid, F, iv, y0, h0):
         # stencil spacing follows the posterior width once it is known; halves when stuck
         h = np.where(pd[:, None], np.clip(sd_new, 1e-9, h0), h)
         h = np.where(stuck[:, None], 0.5 * h, h)
+        # converged: Newton steps below 1 % of the posterior sd (or a stencil far below it)
+        small = np.all(np.abs(np.where(pd[:, None], step, 0.0)) < 0.01 * sd, axis=1) & pd
+        if np.all(small | np.all(h < 1e-3 * sd, axis=1)):
+            break
     chi2 = profile_chi2(grid, F, iv, y[:, None, :])[:, 0]
     return y, chi2, sd
 
