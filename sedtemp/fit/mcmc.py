@@ -35,6 +35,9 @@ _RHAT_MAX = 1.01
 #: Burn-in: this many autocorrelation times are discarded (at most half the chain).
 _BURN_TAU = 3
 _PPP_DRAWS = 500
+#: 16-node Gauss-Hermite rule, weights folded with exp(x^2) so the integrand is used as is.
+_GH_X, _GH_W = np.polynomial.hermite.hermgauss(16)
+_GH_LOGW = np.log(_GH_W) + _GH_X**2
 #: Nodes of the coarse grid posterior that places the walkers.
 _START_N_T, _START_N_BETA = 40, 24
 
@@ -107,6 +110,16 @@ class MarginalLogPosterior:
         self._norm = (-np.log(a.a_hi - a.a_lo) if self._uniform_linear
                       else -np.log(np.log(10.0) * (prior[self.amp_name].high - prior[self.amp_name].low)))
 
+    def _nodes(self, mu, sd):
+        """Quadrature nodes for int L dA / A: Gauss-Hermite on the conditional Gaussian when every
+        walker's amplitude is > 16 sd from 0 and 8 sd from the prior bounds (the integrand is then
+        a near-Gaussian times a slowly varying 1 / A); the general two-panel rule otherwise."""
+        a = self.amplitude
+        if np.all((mu > 16 * sd) & (mu - 8 * sd > a.a_lo) & (mu + 8 * sd < a.a_hi)):
+            A = mu[:, None] + np.sqrt(2.0) * sd[:, None] * _GH_X
+            return A, np.log(np.sqrt(2.0) * sd)[:, None] + _GH_LOGW - np.log(A)
+        return quadrature_nodes(mu, sd, a.a_lo, a.a_hi)
+
     def full_theta(self, x, log_amp=None):
         """(n, n_free) -> (n, n_params) with the amplitude column (0 unless given)."""
         cols = dict(zip(self.free, np.atleast_2d(x).T))
@@ -130,8 +143,7 @@ class MarginalLogPosterior:
             a_hat, sd, _, _ = conditional(self._F, self._iv, g, self._masks, self._d2)
             a_hat, sd = a_hat[0], sd[0]
             ok = np.isfinite(a_hat) & np.isfinite(sd) & (sd > 0)
-            A, lw = quadrature_nodes(np.where(ok, a_hat, 1.0), np.where(ok, sd, 1.0),
-                                     self.amplitude.a_lo, self.amplitude.a_hi)
+            A, lw = self._nodes(np.where(ok, a_hat, 1.0), np.where(ok, sd, 1.0))
             ll = self.likelihood((A[..., None] * g[:, None, :]).reshape(-1, g.shape[1])).reshape(A.shape)
             if self._uniform_linear:
                 lw = lw + np.log(A)
@@ -230,6 +242,12 @@ def _run_chain(post_fn, p0, seed, *, ess_target, check_every, max_steps, key_idx
         burn = int(min(chain.shape[0] // 2, np.ceil(_BURN_TAU * np.max(tau))))
         if (chain.shape[0] - burn) * nw < ess_target:
             continue  # cannot have enough effective draws yet
+        # a cheap estimate first (emcee's autocorrelation time); the rank-normalised
+        # diagnostics only when it says the target may be reached
+        tau_fast = emcee.autocorr.integrated_time(chain[burn:], tol=0)
+        if np.any(nw * (chain.shape[0] - burn) / tau_fast[key_idx] < 0.8 * ess_target):
+            tau = tau_fast
+            continue
         ess, rh, tau = _diagnostics(chain[burn:])
         burn = int(min(chain.shape[0] // 2, np.ceil(_BURN_TAU * np.max(tau))))
         if (np.all(ess[key_idx] >= ess_target) and np.all(rh[key_idx] < _RHAT_MAX)
