@@ -26,6 +26,12 @@ _LOG_FLOOR = -80.0
 #: In-cell jitter of the draws is scaled to at most this many posterior sd
 #: (uniform jitter of width w adds w^2/12 to the variance: <= 2 % here).
 _JITTER = 0.49
+#: A posterior whose smallest principal sd on the node lattice is below this many
+#: times the refinement threshold (in cells) is refined too: a T-beta ridge a
+#: fraction of a cell across is summarised wrongly however wide its marginals.
+#: (Node masses of an unresolved ridge still spread over ~1-2 nodes per row, so
+#: the estimate is biased high; twice the marginal threshold leaves margin.)
+_RIDGE = 2.0
 
 
 class BlockRandom:
@@ -192,6 +198,7 @@ class BlockSummary:
     cell_lnT: np.ndarray
     cell_b: np.ndarray
     node: np.ndarray
+    sd_min: np.ndarray | None = None
     cube: np.ndarray | None = None
     zoom_failed: np.ndarray | None = None
     extra: dict = field(default_factory=dict)
@@ -201,6 +208,8 @@ class BlockSummary:
         out = self.sd_lnT < cells * self.cell_lnT
         if grid.has_beta:
             out |= self.sd_b < cells * self.cell_b
+            # a T-beta ridge narrower than a cell across, however long
+            out |= self.sd_min < _RIDGE * cells
         return out
 
     def replace(self, rows, other):
@@ -209,7 +218,7 @@ class BlockSummary:
             self.cols[key][rows] = val
         for key, val in other.draws.items():
             self.draws[key][rows] = val
-        for name in ("ok", "sd_lnT", "sd_b", "cell_lnT", "cell_b", "node"):
+        for name in ("ok", "sd_lnT", "sd_b", "cell_lnT", "cell_b", "node", "sd_min"):
             getattr(self, name)[rows] = getattr(other, name)
 
     def final_flags(self, grid, coarse):
@@ -308,6 +317,19 @@ def _correlation(cube, nodes):
         return cTb / np.sqrt(vT * vb)
 
 
+def _min_principal_sd(cube):
+    """Smallest principal sd of the node masses (ns, nT, nB), in cells (node-index units)."""
+    ns, nT, nB = cube.shape
+    i, j = np.arange(nT, dtype=float), np.arange(nB, dtype=float)
+    pT, pb = cube.sum(axis=2), cube.sum(axis=1)
+    mi, mj = pT @ i, pb @ j
+    a = pT @ i**2 - mi**2
+    c = pb @ j**2 - mj**2
+    b = np.einsum("sij,i,j->s", cube, i, j) - mi * mj
+    lam = 0.5 * (a + c) - np.sqrt(0.25 * (a - c) ** 2 + b * b)
+    return np.sqrt(np.maximum(lam, 0.0))
+
+
 def _map_columns(grid, nodes, cols, a_hat, chi2, flux, err, limit_only):
     """MAP node (max of -chi2/2 + log prior density, amplitude at its optimum) and chi^2 there."""
     ns = flux.shape[0]
@@ -360,5 +382,6 @@ def summarise_nodes(grid, nodes, flux, err, limit_only, rng, n, n_ppp):
     cell_b = (np.broadcast_to(np.diff(nodes.beta, axis=1).max(axis=1), (ns,)).copy() if grid.has_beta
               else np.full(ns, np.nan))
     draws = {"T": T, "beta": beta, grid.amp_name: lamp}
+    sd_min = _min_principal_sd(cube) if grid.has_beta else np.full(ns, np.inf)
     return BlockSummary(cols=cols, draws=draws, ok=ok, sd_lnT=sd_lnT, sd_b=sd_b, cell_lnT=cell_T, cell_b=cell_b,
-                        node=node, cube=cube)
+                        node=node, sd_min=sd_min, cube=cube)

@@ -31,6 +31,7 @@ from ._blocks import Nodes, _RowRandom, conditional, summarise_nodes
 __all__: list[str] = []
 
 _ZOOM_NODES = 25
+_MAX_NODES = 97
 #: Window half-width in Laplace posterior sd (cells of 0.5 sd).
 _HALF_SD = 6.0
 #: Posterior mass on a non-prior window edge above which the window is widened.
@@ -75,7 +76,7 @@ def _newton(c, h):
         H = (c[:, 1] + c[:, 2] - 2 * c[:, 0]) / h[:, 0] ** 2
         pd = H > 0
         Hs = np.where(pd, H, 1.0)
-        return (-g1 / Hs)[:, None], pd, np.sqrt(2.0 / Hs)[:, None]
+        return (-g1 / Hs)[:, None], pd, np.sqrt(2.0 / Hs)[:, None], np.zeros(len(c))
     g1 = (c[:, 1] - c[:, 2]) / (2 * h[:, 0])
     g2 = (c[:, 3] - c[:, 4]) / (2 * h[:, 1])
     H11 = (c[:, 1] + c[:, 2] - 2 * c[:, 0]) / h[:, 0] ** 2
@@ -87,25 +88,28 @@ def _newton(c, h):
     step = np.column_stack([-(H22 * g1 - H12 * g2) / d, -(H11 * g2 - H12 * g1) / d])
     # covariance of the Laplace approximation: 2 H^-1 (chi^2 = -2 log L)
     sd = np.sqrt(np.abs(np.column_stack([2 * H22 / d, 2 * H11 / d])))
-    return step, pd, sd
+    rho = np.where(pd, -H12 / np.sqrt(np.abs(H11 * H22) + 1e-300), 0.0)
+    return step, pd, sd, rho
 
 
 def optimise(grid, F, iv, y0, h0):
-    """Vectorised local minimum of the profiled chi^2 from y0 (k, d): (y, chi2, sd).
+    """Vectorised local minimum of the profiled chi^2 from y0 (k, d): (y, chi2, sd, rho).
 
     ``h0`` (k, d) is the initial stencil spacing (the coarse cell); ``sd``
     the Laplace posterior sd at the optimum (``h0`` where the Hessian is not
-    positive definite).
+    positive definite), ``rho`` the Laplace T-beta correlation.
     """
     lo, hi = _bounds(grid)
     sten = _STENCIL2 if grid.has_beta else _STENCIL1
     y = np.clip(y0, lo, hi)
     h = 0.5 * h0
     sd = h0.copy()
+    rho = np.zeros(len(y))
     for _ in range(_N_ITER):  # a fixed number of vectorised iterations over the whole subset
         pts = np.clip(y[:, None, :] + sten[None] * h[:, None, :], lo, hi)
         c = profile_chi2(grid, F, iv, pts)
-        step, pd, sd_new = _newton(c, h)
+        step, pd, sd_new, rho_new = _newton(c, h)
+        rho = np.where(pd, rho_new, rho)
         step = np.clip(step, -4 * h, 4 * h)
         trial = np.clip(y + np.where(pd[:, None], step, 0.0), lo, hi)
         ct = profile_chi2(grid, F, iv, trial[:, None, :])[:, 0]
@@ -124,13 +128,24 @@ def optimise(grid, F, iv, y0, h0):
         if np.all(small | np.all(h < 1e-3 * sd, axis=1)):
             break
     chi2 = profile_chi2(grid, F, iv, y[:, None, :])[:, 0]
-    return y, chi2, sd
+    return y, chi2, sd, rho
 
 
-def window_nodes(grid, centre, half):
+def _n_nodes(rho):
+    """Nodes per window axis so that a ridge of correlation rho is >= 1 cell across.
+
+    Across the ridge the sd is ~ sd_marginal sqrt(1 - rho^2), and a window of
+    +-6 marginal sd has cells of 12 sd / (n - 1): n >= 12 / sqrt(1 - rho^2) + 1,
+    at least 25 and at most 97 (one n per block, so the arrays stay rectangular).
+    """
+    r = np.max(np.abs(rho)) if len(rho) else 0.0
+    need = 2 * _HALF_SD / np.sqrt(max(1.0 - r * r, 1e-6)) + 1
+    return int(np.clip(np.ceil(need), _ZOOM_NODES, _MAX_NODES))
+
+
+def window_nodes(grid, centre, half, n=_ZOOM_NODES):
     """Uniform per-source windows (k sources) around ``centre`` (k, d) of half-width ``half``."""
     lo, hi = _bounds(grid)
-    n = _ZOOM_NODES
     k = centre.shape[0]
     t = np.linspace(0.0, 1.0, n)
     c = np.clip(centre, lo, hi)
@@ -189,11 +204,10 @@ def _posterior_mean(nodes, post):
     return np.column_stack(out)
 
 
-def _windows(grid, F_all, err, limit_only, centre, half):
+def _windows(grid, F_all, err, limit_only, centre, half, n):
     """Windows widened until the edge mass is small: (nodes, still_on_edge)."""
-    todo = np.arange(centre.shape[0])
     for attempt in range(_MAX_WIDEN + 1):
-        nodes = window_nodes(grid, centre, half)
+        nodes = window_nodes(grid, centre, half, n)
         logp = grid.log_posterior(F_all, err, limit_only, nodes)[0]
         peak = logp.max(axis=1, keepdims=True)
         post = np.exp(logp - np.where(np.isfinite(peak), peak, 0.0))
@@ -217,8 +231,8 @@ def refine_block(grid, out, rows, flux, err, limit_only, rng, n, n_ppp):
         y0.append(out.cols["beta_map"][rows])
         h0.append(out.cell_b[rows])
     y0, h0 = np.column_stack(y0), np.column_stack(h0)
-    y, chi2_opt, sd = optimise(grid, F, iv, y0, h0)
-    nodes, on_edge = _windows(grid, f, e, lim, y, _HALF_SD * sd)
+    y, chi2_opt, sd, rho = optimise(grid, F, iv, y0, h0)
+    nodes, on_edge = _windows(grid, f, e, lim, y, _HALF_SD * sd, _n_nodes(rho))
     summ = summarise_nodes(grid, nodes, f, e, lim, _RowRandom(rng, rows), n, n_ppp)
     failed = on_edge | (summ.cols["chi2_map"] > chi2_opt + _CHI2_TOL)
     better = chi2_opt < summ.cols["chi2_map"]
