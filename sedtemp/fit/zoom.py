@@ -31,7 +31,7 @@ from ._blocks import Nodes, _RowRandom, conditional, summarise_nodes
 __all__: list[str] = []
 
 _ZOOM_NODES = 25
-_MAX_NODES = 97
+_NODE_LEVELS = (25, 49, 97)
 #: Window half-width in Laplace posterior sd (cells of 0.5 sd).
 _HALF_SD = 6.0
 #: Posterior mass on a non-prior window edge above which the window is widened.
@@ -105,42 +105,53 @@ def optimise(grid, F, iv, y0, h0):
     h = 0.5 * h0
     sd = h0.copy()
     rho = np.zeros(len(y))
+    active = np.ones(len(y), bool)
     for _ in range(_N_ITER):  # a fixed number of vectorised iterations over the whole subset
         pts = np.clip(y[:, None, :] + sten[None] * h[:, None, :], lo, hi)
         c = profile_chi2(grid, F, iv, pts)
         step, pd, sd_new, rho_new = _newton(c, h)
-        rho = np.where(pd, rho_new, rho)
         step = np.clip(step, -4 * h, 4 * h)
         trial = np.clip(y + np.where(pd[:, None], step, 0.0), lo, hi)
         ct = profile_chi2(grid, F, iv, trial[:, None, :])[:, 0]
         ib = np.argmin(c, axis=1)
         cb = c[np.arange(len(c)), ib]
-        use_trial = pd & (ct <= np.minimum(cb, c[:, 0]))
-        use_best = ~use_trial & (cb < c[:, 0])
+        use_trial = active & pd & (ct <= np.minimum(cb, c[:, 0]))
+        use_best = active & ~use_trial & (cb < c[:, 0])
         y = np.where(use_trial[:, None], trial, np.where(use_best[:, None], pts[np.arange(len(c)), ib], y))
-        sd = np.where(pd[:, None], sd_new, sd)
-        stuck = ~use_trial & ~use_best
+        upd = active & pd
+        sd = np.where(upd[:, None], sd_new, sd)
+        rho = np.where(upd, rho_new, rho)
+        stuck = active & ~use_trial & ~use_best
         # stencil spacing follows the posterior width once it is known; halves when stuck
-        h = np.where(pd[:, None], np.clip(sd_new, 1e-9, h0), h)
+        h = np.where(upd[:, None], np.clip(sd_new, 1e-9, h0), h)
         h = np.where(stuck[:, None], 0.5 * h, h)
-        # converged: Newton steps below 1 % of the posterior sd (or a stencil far below it)
+        # a source stops once its Newton step is below 1 % of its posterior sd (or its
+        # stencil far below it): its result then depends on its own data only, not on
+        # how long the other sources of the block take
         small = np.all(np.abs(np.where(pd[:, None], step, 0.0)) < 0.01 * sd, axis=1) & pd
-        if np.all(small | np.all(h < 1e-3 * sd, axis=1)):
+        active &= ~(small | np.all(h < 1e-3 * sd, axis=1))
+        if not active.any():
             break
     chi2 = profile_chi2(grid, F, iv, y[:, None, :])[:, 0]
     return y, chi2, sd, rho
 
 
 def _n_nodes(rho):
+    """Nodes per window axis for each source (see _n_nodes_one)."""
+    return np.array([_n_nodes_one(r) for r in np.atleast_1d(rho)], int)
+
+
+def _n_nodes_one(rho):
     """Nodes per window axis so that a ridge of correlation rho is >= 1 cell across.
 
     Across the ridge the sd is ~ sd_marginal sqrt(1 - rho^2), and a window of
     +-6 marginal sd has cells of 12 sd / (n - 1): n >= 12 / sqrt(1 - rho^2) + 1,
-    at least 25 and at most 97 (one n per block, so the arrays stay rectangular).
+    rounded up to 25, 49 or 97; sources with the same n are evaluated together.
     """
-    r = np.max(np.abs(rho)) if len(rho) else 0.0
+    r = abs(float(rho))
     need = 2 * _HALF_SD / np.sqrt(max(1.0 - r * r, 1e-6)) + 1
-    return int(np.clip(np.ceil(need), _ZOOM_NODES, _MAX_NODES))
+    # three sizes only, so the sources of a block share few window shapes
+    return int(next(n for n in _NODE_LEVELS if n >= min(need, _NODE_LEVELS[-1])))
 
 
 def window_nodes(grid, centre, half, n=_ZOOM_NODES):
@@ -232,17 +243,21 @@ def refine_block(grid, out, rows, flux, err, limit_only, rng, n, n_ppp):
         h0.append(out.cell_b[rows])
     y0, h0 = np.column_stack(y0), np.column_stack(h0)
     y, chi2_opt, sd, rho = optimise(grid, F, iv, y0, h0)
-    nodes, on_edge = _windows(grid, f, e, lim, y, _HALF_SD * sd, _n_nodes(rho))
-    summ = summarise_nodes(grid, nodes, f, e, lim, _RowRandom(rng, rows), n, n_ppp)
-    failed = on_edge | (summ.cols["chi2_map"] > chi2_opt + _CHI2_TOL)
-    better = chi2_opt < summ.cols["chi2_map"]
-    if better.any():
-        _use_optimum(grid, summ, better, y, f, e, lim)
-    summ.cube = None
-    out.replace(rows, summ)
+    n_of = _n_nodes(rho) if grid.has_beta else np.full(len(rows), _ZOOM_NODES)
     if out.zoom_failed is None:
         out.zoom_failed = np.zeros(out.ok.size, bool)
-    out.zoom_failed[rows] = failed
+    for n_nodes in np.unique(n_of):  # at most three window sizes
+        sel = np.flatnonzero(n_of == n_nodes)
+        r = rows[sel]
+        nodes, on_edge = _windows(grid, f[sel], e[sel], lim[sel], y[sel], _HALF_SD * sd[sel], int(n_nodes))
+        summ = summarise_nodes(grid, nodes, f[sel], e[sel], lim[sel], _RowRandom(rng, r), n, n_ppp)
+        failed = on_edge | (summ.cols["chi2_map"] > chi2_opt[sel] + _CHI2_TOL)
+        better = chi2_opt[sel] < summ.cols["chi2_map"]
+        if better.any():
+            _use_optimum(grid, summ, better, y[sel], f[sel], e[sel], lim[sel])
+        summ.cube = None
+        out.replace(r, summ)
+        out.zoom_failed[r] = failed
     out.extra["zoomed"] = rows
 
 
