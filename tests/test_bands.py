@@ -441,3 +441,32 @@ def test_color_correction_errors():
         bs["a"].color_correction(lambda nu: np.ones(3))
     with pytest.raises(InputError, match=r"band\(s\) 'a'"):
         bs["a"].color_correction(lambda nu: np.where(nu == bs["a"].nu_ref_hz, 0.0, 1.0))
+
+
+def test_band_integration_matches_synphot_through_a_tabulated_response(tmp_path):
+    # Reference: synphot (Observation.effstim in FLAM, the photon-weighted mean
+    # F_lambda = int F_lambda R lambda dlambda / int R lambda dlambda) for a
+    # tabulated response and a tabulated spectrum. In sedtemp's conventions that
+    # is a photon-counting band with reference spectrum F_lambda = const
+    # (F_nu ~ nu^-2, reference=-2.0): F_quoted(nu_ref) = <F_lambda> lambda_ref^2 / c,
+    # exactly, for any nu_ref. Tolerance 1e-4 (both are trapezoid rules on fine grids).
+    synphot = pytest.importorskip("synphot")
+    from astropy.table import Table
+
+    from sedtemp.planck import _planck_nu_si
+
+    lam = np.linspace(200.0, 300.0, 401)
+    resp = np.exp(-0.5 * ((lam - 250.0) / 18.0) ** 2)
+    path = tmp_path / "resp.ecsv"
+    Table({"wavelength": lam * u.um, "response": resp}).write(path)
+    band = Band.from_file("t250", path, detector="photon", reference=-2.0)
+    bs = BandSet([band])
+    ours = bs.band_fluxes(_planck_nu_si(bs.nu_grid_hz, 18.0)[None])[0, 0]  # W m-2 Hz-1
+    wl = np.linspace(150.0, 350.0, 40001) * u.um
+    fnu = _planck_nu_si(wl.to_value(u.Hz, u.spectral()), 18.0) * u.W / u.m**2 / u.Hz
+    sp = synphot.SourceSpectrum(synphot.models.Empirical1D, points=wl, lookup_table=fnu.to(u.Jy))
+    bp = synphot.SpectralElement(synphot.models.Empirical1D, points=lam * u.um, lookup_table=resp)
+    grid = np.linspace(200.0, 300.0, 200001) * u.um
+    flam = synphot.Observation(sp, bp).effstim(flux_unit="flam", wavelengths=grid).to_value(u.W / u.m**2 / u.m)
+    lam_ref = 299792458.0 / band.nu_ref_hz
+    assert ours == pytest.approx(flam * lam_ref**2 / 299792458.0, rel=1e-4)
