@@ -27,11 +27,10 @@ _LOG_FLOOR = -80.0
 #: (uniform jitter of width w adds w^2/12 to the variance: <= 2 % here).
 _JITTER = 0.49
 #: A posterior whose smallest principal sd on the node lattice is below this many
-#: times the refinement threshold (in cells) is refined too: a T-beta ridge a
-#: fraction of a cell across is summarised wrongly however wide its marginals.
-#: (Node masses of an unresolved ridge still spread over ~1-2 nodes per row, so
-#: the estimate is biased high; twice the marginal threshold leaves margin.)
-_RIDGE = 2.0
+#: times the refinement threshold (in cells), and whose T marginal is within
+#: twice it, is refined too: such a ridge is summarised too wide by the coarse
+#: grid (found at S/N 100: a marginal 2.5x too wide).
+_RIDGE = 1.0
 
 
 class BlockRandom:
@@ -122,22 +121,31 @@ def conditional(F, iv, g, masks, d2):
     a_hat, sd, chi2, logdet : ndarray (ns, nn)
     """
     if g.ndim == 2:
-        def mm(w, gg):
-            return w @ gg.T
+        def mm(w, gg, cols):
+            return w[:, cols] @ gg[:, cols].T
     else:
-        def mm(w, gg):
-            return np.einsum("sb,snb->sn", w, gg)
+        def mm(w, gg, cols):
+            return np.einsum("sb,snb->sn", w[:, cols], gg[..., cols])
+    nb = F.shape[1]
+    groups = [np.flatnonzero(m > 0) for m in masks]  # disjoint calibration groups
+    rest = np.setdiff1d(np.arange(nb), np.concatenate(groups) if groups else np.zeros(0, int))
+    Fiv = F * iv
     g2 = g * g
-    a = mm(iv, g2)
-    b = mm(F * iv, g)
-    f = np.sum(F * F * iv, axis=1)[:, None]
-    a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)
-    a_hat0 *= a_hat0
+    parts = [(mm(iv, g2, cols), mm(Fiv, g, cols)) for cols in groups]  # per-group a_g, b_g
+    if rest.size:
+        a, b = mm(iv, g2, rest), mm(Fiv, g, rest)
+    else:
+        a = np.zeros(parts[0][0].shape)
+        b = np.zeros_like(a)
+    for ak, bk in parts:
+        a += ak
+        b += bk
+    f = np.sum(F * Fiv, axis=1)[:, None]
     det_prod = np.ones_like(a)  # prod_g (1 + d_g^2 A^2 a_g): one log at the end
-    for m, dd in zip(masks, d2):  # a few calibration groups
-        ivm = iv * m
-        ak = mm(ivm, g2)
-        bk = mm(F * ivm, g)
+    if parts:
+        a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)
+        a_hat0 *= a_hat0
+    for (ak, bk), dd in zip(parts, d2):  # a few calibration groups (Woodbury, diagonal core)
         kap = dd * a_hat0
         den = 1.0 + kap * ak
         kap /= den
@@ -208,8 +216,9 @@ class BlockSummary:
         out = self.sd_lnT < cells * self.cell_lnT
         if grid.has_beta:
             out |= self.sd_b < cells * self.cell_b
-            # a T-beta ridge narrower than a cell across, however long
-            out |= self.sd_min < _RIDGE * cells
+            # a T-beta ridge a fraction of a cell across, when its marginal is
+            # also within two cells (wider ridges are summarised well by the rows)
+            out |= (self.sd_min < _RIDGE * cells) & (self.sd_lnT < 2 * cells * self.cell_lnT)
         return out
 
     def replace(self, rows, other):

@@ -31,7 +31,7 @@ from ._blocks import Nodes, _RowRandom, conditional, summarise_nodes
 __all__: list[str] = []
 
 _ZOOM_NODES = 25
-_NODE_LEVELS = (25, 49, 97)
+_NODE_LEVELS = (25, 41, 61)
 #: Window half-width in Laplace posterior sd (cells of 0.5 sd).
 _HALF_SD = 6.0
 #: Posterior mass on a non-prior window edge above which the window is widened.
@@ -146,7 +146,9 @@ def _n_nodes_one(rho):
 
     Across the ridge the sd is ~ sd_marginal sqrt(1 - rho^2), and a window of
     +-6 marginal sd has cells of 12 sd / (n - 1): n >= 12 / sqrt(1 - rho^2) + 1,
-    rounded up to 25, 49 or 97; sources with the same n are evaluated together.
+    rounded up to 25, 41 or 61 (capped: beyond, the ridge is resolved to
+    less than a cell and the source may be flagged grid_too_coarse); sources
+    with the same n are evaluated together.
     """
     r = abs(float(rho))
     need = 2 * _HALF_SD / np.sqrt(max(1.0 - r * r, 1e-6)) + 1
