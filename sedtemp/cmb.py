@@ -20,7 +20,7 @@ from .constants import T_CMB0
 from .errors import InputError
 from .planck import _planck_nu_si
 
-__all__ = ["cmb_temperature", "cmb_heated_temperature", "cmb_contrast_factor"]
+__all__ = ["cmb_contrast_factor", "cmb_heated_temperature", "cmb_temperature"]
 
 
 def _cmb_heated_si(t_k, beta, redshift):

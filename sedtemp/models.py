@@ -28,30 +28,36 @@ da Cunha et al. (2013).
 
 from __future__ import annotations
 
-
 import astropy.units as u
 import numpy as np
 
 from ._units import to_hz, to_si
-from .cmb import _check_redshift, _cmb_heated_si, _emission_si, cmb_contrast_factor, cmb_heated_temperature, cmb_temperature
+from .cmb import (
+    _check_redshift,
+    _cmb_heated_si,
+    _emission_si,
+    cmb_contrast_factor,
+    cmb_heated_temperature,
+    cmb_temperature,
+)
 from .constants import DEFAULT_GAS_TO_DUST, M_HYDROGEN, M_SUN, T_CMB0
 from .errors import InputError
 from .opacity import SaturatedPowerLawOpacity
 from .priors import LogUniformAmplitude, Prior, Uniform
 
 __all__ = [
-    "SEDModel",
+    "MODELS",
+    "M_HYDROGEN",
+    "T_CMB0",
     "ModifiedBlackbody",
+    "SEDModel",
     "ThickModifiedBlackbody",
     "TwoTemperatureModel",
-    "MODELS",
-    "get_model",
-    "cmb_temperature",
-    "cmb_heated_temperature",
     "cmb_contrast_factor",
+    "cmb_heated_temperature",
+    "cmb_temperature",
     "default_opacity",
-    "T_CMB0",
-    "M_HYDROGEN",
+    "get_model",
 ]
 
 _M_SUN = M_SUN
@@ -386,7 +392,9 @@ class ModifiedBlackbody(_OneTemperature):
                 "amplitude='mass' at redshift 0 needs distance (e.g. distance=140 * u.pc; "
                 "a bare number is in pc)"
             )
-        from astropy.cosmology import Planck18  # reference cosmology, loaded only when needed
+        from astropy.cosmology import (
+            Planck18,  # reference cosmology, loaded only when needed
+        )
 
         return float(Planck18.luminosity_distance(self.redshift).to_value(u.m))
 

@@ -19,7 +19,7 @@ import numpy as np
 from ._units import to_flux_si
 from .errors import InputError, SedtempWarning
 
-__all__ = ["Photometry", "prepare", "validate", "photometry_problems"]
+__all__ = ["Photometry", "photometry_problems", "prepare", "validate"]
 
 
 @dataclass(frozen=True)

@@ -18,7 +18,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["simulate_photometry", "JY_SI"]
+__all__ = ["JY_SI", "simulate_photometry"]
 
 #: 1 Jy in W m^-2 Hz^-1.
 JY_SI = 1e-26

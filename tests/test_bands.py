@@ -79,7 +79,7 @@ def test_reference_spectrum_has_unit_color_correction(detector, reference, alpha
     # denominator use the same quadrature, so only float rounding remains (1e-13).
     band = _bump_band(detector=detector, reference=reference, reference_wavelength=240 * u.um)
     bs = BandSet([band, Band.tophat("th100", 100 * u.um, 0.4, detector=detector, reference=reference)])
-    spec = lambda nu: 3.0 * (nu / bs.nu_ref_hz[:, None]) ** alpha  # noqa: E731 (one row per band)
+    spec = lambda nu: 3.0 * (nu / bs.nu_ref_hz[:, None]) ** alpha
     k_band = band.color_correction(lambda nu: 3.0 * (nu / band.nu_ref_hz) ** alpha)
     np.testing.assert_allclose(k_band, 1.0, rtol=1e-13)
     for i, b in enumerate(bs):
@@ -137,8 +137,8 @@ def test_broad_band_flux_matches_scipy_quad(detector, p, reference, alpha, t_k, 
     flux = bs.band_fluxes(spec(bs.nu_grid_hz))[0]
 
     nu_lo, nu_hi, nu_ref = C_LIGHT / (LAM_HI * 1e-6), C_LIGHT / (LAM_LO * 1e-6), band.nu_ref_hz
-    f_num = lambda nu: spec(np.atleast_1d(nu))[0] * _bump_nu(nu) * nu**p  # noqa: E731
-    f_den = lambda nu: (nu / nu_ref) ** alpha * _bump_nu(nu) * nu**p  # noqa: E731
+    f_num = lambda nu: spec(np.atleast_1d(nu))[0] * _bump_nu(nu) * nu**p
+    f_den = lambda nu: (nu / nu_ref) ** alpha * _bump_nu(nu) * nu**p
     kw = dict(epsabs=0.0, epsrel=1e-12, limit=200)
     num, den = quad(f_num, nu_lo, nu_hi, **kw)[0], quad(f_den, nu_lo, nu_hi, **kw)[0]
     ref = num / den

@@ -5,9 +5,15 @@ import warnings
 import astropy.units as u
 import numpy as np
 import pytest
-
 from conftest import TRUTH, simulate
-from sedtemp.errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning, SedtempWarning
+
+from sedtemp.errors import (
+    ConvergenceWarning,
+    GridWarning,
+    InputError,
+    PriorEdgeWarning,
+    SedtempWarning,
+)
 from sedtemp.fit import GridPosterior, fit_source, grid_posterior
 from sedtemp.priors import Uniform
 
@@ -301,10 +307,10 @@ def test_log_uniform_amplitude_integral_matches_adaptive_quadrature():
         cut = 1e-2 * s
         v = 0.0
         if a < cut:
-            v += quad(lambda x: np.exp(-0.5 * ((np.exp(x) - mu) / s) ** 2), np.log(a), np.log(cut),
+            v += quad(lambda x, mu=mu, s=s: np.exp(-0.5 * ((np.exp(x) - mu) / s) ** 2), np.log(a), np.log(cut),
                       epsrel=1e-13, limit=200)[0]
             a = cut
-        v += quad(lambda x: np.exp(-0.5 * ((x - mu) / s) ** 2) / x, a, top, points=[mu] if a < mu < top else None,
+        v += quad(lambda x, mu=mu, s=s: np.exp(-0.5 * ((x - mu) / s) ** 2) / x, a, top, points=[mu] if a < mu < top else None,
                   epsrel=1e-13, epsabs=0, limit=200)[0]
         ref = np.log(v) - np.log(np.log(10) * 11)
         assert am.log_integral(np.array([mu]), np.array([s]))[0] == pytest.approx(ref, abs=1e-6)
@@ -323,8 +329,8 @@ def test_amplitude_draws_follow_the_conditional():
     for m in (0.5, 3.0, 20.0, 200.0):
         mu = np.full(100_000, m)
         A = am.draw(mu, np.ones_like(mu), rng.uniform(size=(mu.size, am.n_uniform)))
-        num = quad(lambda x: np.exp(-0.5 * (x - m) ** 2), am.a_lo, m + 12, limit=500)[0]
-        den = quad(lambda x: np.exp(-0.5 * (x - m) ** 2) / x, am.a_lo, m + 12, points=[1e-3, m], limit=500)[0]
+        num = quad(lambda x, m=m: np.exp(-0.5 * (x - m) ** 2), am.a_lo, m + 12, limit=500)[0]
+        den = quad(lambda x, m=m: np.exp(-0.5 * (x - m) ** 2) / x, am.a_lo, m + 12, points=[1e-3, m], limit=500)[0]
         assert A.mean() == pytest.approx(num / den, abs=5 * A.std() / np.sqrt(A.size))
 
 

@@ -328,7 +328,7 @@ def _correlation(cube, nodes):
 
 def _min_principal_sd(cube):
     """Smallest principal sd of the node masses (ns, nT, nB), in cells (node-index units)."""
-    ns, nT, nB = cube.shape
+    _, nT, nB = cube.shape
     i, j = np.arange(nT, dtype=float), np.arange(nB, dtype=float)
     pT, pb = cube.sum(axis=2), cube.sum(axis=1)
     mi, mj = pT @ i, pb @ j

@@ -30,8 +30,12 @@ from scipy.special import log_ndtr, ndtr, ndtri
 from ..errors import InputError
 from ..priors import LogUniformAmplitude, UniformAmplitude
 
-__all__ = ["UniformLinearAmplitude", "LogUniformLinearAmplitude", "amplitude_marginal",
-           "quadrature_nodes"]
+__all__ = [
+    "LogUniformLinearAmplitude",
+    "UniformLinearAmplitude",
+    "amplitude_marginal",
+    "quadrature_nodes",
+]
 
 _LOG_SQRT_2PI = 0.5 * np.log(2.0 * np.pi)
 _LN10 = np.log(10.0)

@@ -7,8 +7,17 @@ with no options fit the same way.
 
 from __future__ import annotations
 
-__all__ = ["N_WALKERS", "ESS_TARGET", "N_DRAWS", "N_PPP", "MAX_STEPS", "CHECK_EVERY", "N_T", "N_BETA",
-           "CHUNK_SIZE"]
+__all__ = [
+           "CHECK_EVERY",
+           "CHUNK_SIZE",
+           "ESS_TARGET",
+           "MAX_STEPS",
+           "N_BETA",
+           "N_DRAWS",
+           "N_PPP",
+           "N_T",
+           "N_WALKERS",
+]
 
 #: emcee walkers. The log posterior is vectorised over walkers, so more walkers
 #: cost little per step while the chain-length rule (50 tau) fixes the steps.

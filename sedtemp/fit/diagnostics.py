@@ -16,7 +16,7 @@ import numpy as np
 from scipy.special import ndtri
 from scipy.stats import rankdata
 
-__all__ = ["ess_bulk", "ess_tail", "rhat", "ess_basic"]
+__all__ = ["ess_basic", "ess_bulk", "ess_tail", "rhat"]
 
 
 def _split(x):
@@ -81,7 +81,7 @@ def ess_tail(x):
 
 
 def _rhat_basic(s):
-    m, n = s.shape
+    n = s.shape[1]
     means = s.mean(axis=1)
     w = s.var(axis=1, ddof=1).mean()
     b = n * means.var(ddof=1)

@@ -35,8 +35,8 @@ from ..likelihood import Calibration
 from ..photometry import prepare
 from ..seeds import source_seeds
 from . import defaults
-from ._data import resolve_prior
 from ._blocks import BlockRandom, Nodes, conditional, summarise_nodes
+from ._data import resolve_prior
 from .amplitude import amplitude_marginal
 from .summary import QUANTILES
 from .zoom import refine_block

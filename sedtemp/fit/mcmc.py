@@ -12,20 +12,31 @@ import numpy as np
 from scipy.optimize import minimize
 from scipy.stats import qmc
 
-from ..errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning, SedtempWarning
+from ..errors import (
+    ConvergenceWarning,
+    GridWarning,
+    InputError,
+    PriorEdgeWarning,
+    SedtempWarning,
+)
 from ..likelihood import Calibration, PhotometryLikelihood
 from ..photometry import prepare
 from ..seeds import resolve_seed
 from . import defaults
 from ._blocks import conditional
 from ._data import require_bands, resolve_prior
-from .amplitude import LogUniformLinearAmplitude, _logsumexp, amplitude_marginal, quadrature_nodes
+from .amplitude import (
+    LogUniformLinearAmplitude,
+    _logsumexp,
+    amplitude_marginal,
+    quadrature_nodes,
+)
 from .diagnostics import ess_bulk, rhat
 from .grid import GridPosterior, _axis_nodes, _prior_sd
 from .result import FitResult
 from .summary import POOR_FIT_PPP, trust_flags
 
-__all__ = ["fit_source", "LogPosterior", "default_model"]
+__all__ = ["LogPosterior", "default_model", "fit_source"]
 
 #: The kept chain must be this many integrated autocorrelation times long, so
 #: that an early, lucky ESS estimate does not stop it.
