@@ -28,9 +28,9 @@ _LOG_FLOOR = -80.0
 _JITTER = 0.49
 #: A posterior whose smallest principal sd on the node lattice is below this many
 #: times the refinement threshold (in cells), and whose T marginal is within
-#: twice it, is refined too: such a ridge is summarised too wide by the coarse
+#: twice it, is refined too (0.5: a ridge < 0.25 cells across): such a ridge is summarised too wide by the coarse
 #: grid (found at S/N 100: a marginal 2.5x too wide).
-_RIDGE = 1.0
+_RIDGE = 0.5
 
 
 class BlockRandom:
