@@ -79,7 +79,7 @@ def test_reference_spectrum_has_unit_color_correction(detector, reference, alpha
     # denominator use the same quadrature, so only float rounding remains (1e-13).
     band = _bump_band(detector=detector, reference=reference, reference_wavelength=240 * u.um)
     bs = BandSet([band, Band.tophat("th100", 100 * u.um, 0.4, detector=detector, reference=reference)])
-    spec = lambda nu: 3.0 * (nu / bs.nu_ref_hz[:, None]) ** alpha  # noqa: E731 (one row per band)
+    spec = lambda nu: 3.0 * (nu / bs.nu_ref_hz[:, None]) ** alpha
     k_band = band.color_correction(lambda nu: 3.0 * (nu / band.nu_ref_hz) ** alpha)
     np.testing.assert_allclose(k_band, 1.0, rtol=1e-13)
     for i, b in enumerate(bs):
@@ -137,8 +137,8 @@ def test_broad_band_flux_matches_scipy_quad(detector, p, reference, alpha, t_k, 
     flux = bs.band_fluxes(spec(bs.nu_grid_hz))[0]
 
     nu_lo, nu_hi, nu_ref = C_LIGHT / (LAM_HI * 1e-6), C_LIGHT / (LAM_LO * 1e-6), band.nu_ref_hz
-    f_num = lambda nu: spec(np.atleast_1d(nu))[0] * _bump_nu(nu) * nu**p  # noqa: E731
-    f_den = lambda nu: (nu / nu_ref) ** alpha * _bump_nu(nu) * nu**p  # noqa: E731
+    f_num = lambda nu: spec(np.atleast_1d(nu))[0] * _bump_nu(nu) * nu**p
+    f_den = lambda nu: (nu / nu_ref) ** alpha * _bump_nu(nu) * nu**p
     kw = dict(epsabs=0.0, epsrel=1e-12, limit=200)
     num, den = quad(f_num, nu_lo, nu_hi, **kw)[0], quad(f_den, nu_lo, nu_hi, **kw)[0]
     ref = num / den
@@ -441,3 +441,32 @@ def test_color_correction_errors():
         bs["a"].color_correction(lambda nu: np.ones(3))
     with pytest.raises(InputError, match=r"band\(s\) 'a'"):
         bs["a"].color_correction(lambda nu: np.where(nu == bs["a"].nu_ref_hz, 0.0, 1.0))
+
+
+def test_band_integration_matches_synphot_through_a_tabulated_response(tmp_path):
+    # Reference: synphot (Observation.effstim in FLAM, the photon-weighted mean
+    # F_lambda = int F_lambda R lambda dlambda / int R lambda dlambda) for a
+    # tabulated response and a tabulated spectrum. In sedtemp's conventions that
+    # is a photon-counting band with reference spectrum F_lambda = const
+    # (F_nu ~ nu^-2, reference=-2.0): F_quoted(nu_ref) = <F_lambda> lambda_ref^2 / c,
+    # exactly, for any nu_ref. Tolerance 1e-4 (both are trapezoid rules on fine grids).
+    synphot = pytest.importorskip("synphot")
+    from astropy.table import Table
+
+    from sedtemp.planck import _planck_nu_si
+
+    lam = np.linspace(200.0, 300.0, 401)
+    resp = np.exp(-0.5 * ((lam - 250.0) / 18.0) ** 2)
+    path = tmp_path / "resp.ecsv"
+    Table({"wavelength": lam * u.um, "response": resp}).write(path)
+    band = Band.from_file("t250", path, detector="photon", reference=-2.0)
+    bs = BandSet([band])
+    ours = bs.band_fluxes(_planck_nu_si(bs.nu_grid_hz, 18.0)[None])[0, 0]  # W m-2 Hz-1
+    wl = np.linspace(150.0, 350.0, 40001) * u.um
+    fnu = _planck_nu_si(wl.to_value(u.Hz, u.spectral()), 18.0) * u.W / u.m**2 / u.Hz
+    sp = synphot.SourceSpectrum(synphot.models.Empirical1D, points=wl, lookup_table=fnu.to(u.Jy))
+    bp = synphot.SpectralElement(synphot.models.Empirical1D, points=lam * u.um, lookup_table=resp)
+    grid = np.linspace(200.0, 300.0, 200001) * u.um
+    flam = synphot.Observation(sp, bp).effstim(flux_unit="flam", wavelengths=grid).to_value(u.W / u.m**2 / u.m)
+    lam_ref = 299792458.0 / band.nu_ref_hz
+    assert ours == pytest.approx(flam * lam_ref**2 / 299792458.0, rel=1e-4)

@@ -18,7 +18,7 @@ from sedtemp.models import (
     cmb_contrast_factor,
     cmb_heated_temperature,
     cmb_temperature,
-    model_from_name,
+    get_model,
 )
 from sedtemp.opacity import PowerLawOpacity, TabulatedOpacity
 from sedtemp.priors import Prior
@@ -354,14 +354,30 @@ def test_valid_and_default_priors():
 
 
 def test_repr_and_registry():
-    m = model_from_name("thin", distance=140 * u.pc, beta=2.0)
+    m = get_model("thin")(distance=140 * u.pc, beta=2.0)
     assert isinstance(m, ModifiedBlackbody) and m.beta == 2.0
     assert "distance=140 pc" in repr(m) and "beta=2" in repr(m)
-    t = model_from_name("thick", solid_angle=BEAM)
+    t = get_model("thick")(solid_angle=BEAM)
     assert "ThickModifiedBlackbody(solid_angle=" in repr(t)
     assert set(MODELS) == {"thin", "thick", "two_temperature"}
-    two = model_from_name("two_temperature", cold=m, warm=m)
+    two = get_model("two_temperature")(cold=m, warm=m)
     assert repr(two).startswith("TwoTemperatureModel(cold=ModifiedBlackbody(")
+
+
+def test_two_temperature_model_builds_from_workflow_style_options():
+    # regression: the workflow passes redshift= (and the component options), never cold/warm
+    two = TwoTemperatureModel(redshift=0.5, beta=1.8, distance=1 * u.Gpc)
+    assert two.redshift == 0.5 and two.cold.beta == 1.8 and two.param_names == (
+        "log10_mass_cold", "T_cold", "log10_mass_warm", "T_warm")
+    # exact: the sum of the two components evaluated alone
+    th = np.array([[0.0, 15.0, -2.0, 40.0]])
+    np.testing.assert_allclose(two.sed_si(NU, th), two.cold.sed_si(NU, th[:, :2]) + two.warm.sed_si(NU, th[:, 2:]),
+                               rtol=1e-15)
+    a = ModifiedBlackbody(distance=1)
+    with pytest.raises(InputError, match=r"redshift=2 differs from the components' 0"):
+        TwoTemperatureModel(a, a, redshift=2)
+    with pytest.raises(InputError, match="give both cold= and warm= components, or neither"):
+        TwoTemperatureModel(a)
 
 
 # ------------------------------------------------------------------ errors
@@ -419,9 +435,7 @@ def test_two_temperature_errors():
 
 def test_model_name_errors():
     with pytest.raises(InputError, match=r"unknown model 'thinn'; choose one of \['thick', 'thin', 'two_temperature'\]"):
-        model_from_name("thinn")
-    with pytest.raises(InputError, match=r"model 'thin': .*distanse.*; its options are \['opacity', 'amplitude'"):
-        model_from_name("thin", distanse=3)
+        get_model("thinn")
 
 
 def test_default_opacity_gives_diffuse_ism_temperature_in_the_isrf():

@@ -44,7 +44,7 @@ def test_prior_collection():
         p.check_names(("log10_mass", "T", "beta"))
     with pytest.raises(InputError, match=r"prior given for unknown parameter\(s\) \['beta'\]"):
         p.check_names(("T",))
-    with pytest.raises(InputError, match="must be Uniform, LogUniform, Gaussian or UniformAmplitude"):
+    with pytest.raises(InputError, match="must be Uniform, LogUniform, Gaussian, UniformAmplitude or LogUniformAmplitude"):
         Prior({"T": (5, 100)})
 
 

@@ -4,4 +4,4 @@ from .grid import GridPosterior, grid_posterior
 from .mcmc import LogPosterior, fit_source
 from .result import FitResult
 
-__all__ = ["fit_source", "grid_posterior", "GridPosterior", "FitResult", "LogPosterior"]
+__all__ = ["FitResult", "GridPosterior", "LogPosterior", "fit_source", "grid_posterior"]

@@ -12,20 +12,43 @@ import numpy as np
 from scipy.optimize import minimize
 from scipy.stats import qmc
 
-from ..errors import ConvergenceWarning, GridWarning, InputError, PriorEdgeWarning, SedtempWarning
+from ..errors import (
+    ConvergenceWarning,
+    GridWarning,
+    InputError,
+    PriorEdgeWarning,
+    SedtempWarning,
+)
 from ..likelihood import Calibration, PhotometryLikelihood
-from ._data import prepare, require_bands, resolve_prior
+from ..photometry import prepare
+from ..seeds import resolve_seed
+from . import defaults
+from ._blocks import conditional
+from ._data import require_bands, resolve_prior
+from .amplitude import (
+    LogUniformLinearAmplitude,
+    _logsumexp,
+    amplitude_marginal,
+    quadrature_nodes,
+)
+from .diagnostics import ess_bulk, rhat
 from .grid import GridPosterior, _axis_nodes, _prior_sd
 from .result import FitResult
 from .summary import POOR_FIT_PPP, trust_flags
 
-__all__ = ["fit_source", "LogPosterior", "default_model"]
+__all__ = ["LogPosterior", "default_model", "fit_source"]
 
-#: Autocorrelation checks: the chain must be this many tau long (emcee docs' advice).
-_TAU_LENGTH = 50
-#: Relative change of tau between checks below which tau counts as stable.
-_TAU_STABLE = 0.05
+#: The kept chain must be this many integrated autocorrelation times long, so
+#: that an early, lucky ESS estimate does not stop it.
+_TAU_LENGTH = 10
+#: Split R-hat (rank-normalised) below which the walkers agree (Vehtari et al. 2021).
+_RHAT_MAX = 1.01
+#: Burn-in: this many autocorrelation times are discarded (at most half the chain).
+_BURN_TAU = 3
 _PPP_DRAWS = 500
+#: 16-node Gauss-Hermite rule, weights folded with exp(x^2) so the integrand is used as is.
+_GH_X, _GH_W = np.polynomial.hermite.hermgauss(16)
+_GH_LOGW = np.log(_GH_W) + _GH_X**2
 #: Nodes of the coarse grid posterior that places the walkers.
 _START_N_T, _START_N_BETA = 40, 24
 
@@ -56,7 +79,7 @@ class LogPosterior:
 
     def __call__(self, theta):
         theta = np.atleast_2d(theta)
-        lp = self.prior.log_prob(theta, self.names)
+        lp = self.prior.logpdf(theta, self.names)
         good = np.isfinite(lp) & np.asarray(self.model.valid(theta), bool)
         out = np.full(theta.shape[0], -np.inf)
         if good.any():
@@ -66,11 +89,89 @@ class LogPosterior:
         return out
 
 
-def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_walkers, rng, grid=None):
+class MarginalLogPosterior:
+    """Log posterior of the free parameters (T[, beta]) with the linear amplitude integrated out.
+
+    ``(n_walkers, n_free) -> (n_walkers, 3)``: column 0 the log posterior
+    (``-inf`` outside the prior, never NaN), columns 1-2 the conditional
+    amplitude's Gaussian mean and sd (emcee keeps them as blobs, so the
+    amplitude is drawn afterwards without re-evaluating the model).
+
+    The integral over A uses the exact likelihood (calibration covariance
+    and upper limits included) on 48 quadrature nodes placed on the
+    conditional Gaussian (:func:`~sedtemp.fit.amplitude.quadrature_nodes`),
+    so it is exact to quadrature accuracy for either amplitude prior.
+    """
+
+    def __init__(self, model, bands, likelihood, prior, used, cal):
+        self.model, self.bands, self.likelihood, self.prior = model, bands, likelihood, prior
+        self.names = tuple(model.param_names)
+        self.amp_name = model.amplitude_name
+        self.free = tuple(n for n in self.names if n != self.amp_name)
+        self.used = used
+        self.amplitude = amplitude_marginal(prior[self.amp_name])
+        det = likelihood.detected
+        self._F = np.where(det, likelihood.flux, 0.0)[None]
+        self._iv = np.where(det, 1.0 / np.where(det, likelihood.err, 1.0) ** 2, 0.0)[None]
+        c = np.zeros((det.size, 0)) if cal is None else np.where(det[:, None], cal, 0.0)
+        self._masks = (c > 0).astype(float).T
+        self._d2 = np.array([col[col > 0].max() ** 2 for col in c.T]) if c.shape[1] else np.zeros(0)
+        self._uniform_linear = not isinstance(self.amplitude, LogUniformLinearAmplitude)
+        a = self.amplitude
+        self._norm = (-np.log(a.a_hi - a.a_lo) if self._uniform_linear
+                      else -np.log(np.log(10.0) * (prior[self.amp_name].high - prior[self.amp_name].low)))
+
+    def _nodes(self, mu, sd):
+        """Quadrature nodes for int L dA / A: Gauss-Hermite on the conditional Gaussian when every
+        walker's amplitude is > 16 sd from 0 and 8 sd from the prior bounds (the integrand is then
+        a near-Gaussian times a slowly varying 1 / A); the general two-panel rule otherwise."""
+        a = self.amplitude
+        if np.all((mu > 16 * sd) & (mu - 8 * sd > a.a_lo) & (mu + 8 * sd < a.a_hi)):
+            A = mu[:, None] + np.sqrt(2.0) * sd[:, None] * _GH_X
+            return A, np.log(np.sqrt(2.0) * sd)[:, None] + _GH_LOGW - np.log(A)
+        return quadrature_nodes(mu, sd, a.a_lo, a.a_hi)
+
+    def full_theta(self, x, log_amp=None):
+        """(n, n_free) -> (n, n_params) with the amplitude column (0 unless given)."""
+        cols = dict(zip(self.free, np.atleast_2d(x).T))
+        cols[self.amp_name] = np.zeros(len(x)) if log_amp is None else log_amp
+        return np.column_stack([cols[n] for n in self.names])
+
+    def templates(self, x):
+        theta = self.full_theta(x)
+        return self.bands.band_fluxes(self.model.template_si(self.bands.nu_grid_hz, theta))[:, self.used]
+
+    def __call__(self, x):
+        x = np.atleast_2d(x)
+        out = np.full((x.shape[0], 3), np.nan)
+        out[:, 0] = -np.inf
+        lp = self.prior.logpdf(x, self.free)
+        good = np.isfinite(lp) & np.asarray(self.model.valid(self.full_theta(x)), bool)
+        if not good.any():
+            return out
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            g = self.templates(x[good])
+            a_hat, sd, _, _ = conditional(self._F, self._iv, g, self._masks, self._d2)
+            a_hat, sd = a_hat[0], sd[0]
+            ok = np.isfinite(a_hat) & np.isfinite(sd) & (sd > 0)
+            A, lw = self._nodes(np.where(ok, a_hat, 1.0), np.where(ok, sd, 1.0))
+            ll = self.likelihood((A[..., None] * g[:, None, :]).reshape(-1, g.shape[1])).reshape(A.shape)
+            if self._uniform_linear:
+                lw = lw + np.log(A)
+            lm = _logsumexp(lw + ll) + self._norm
+        val = np.where(ok & np.isfinite(lm), lm + lp[good], -np.inf)
+        out[good, 0] = val
+        out[good, 1], out[good, 2] = a_hat, sd
+        return out
+
+
+def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_walkers, rng, grid=None,
+                     columns=None):
     """Walkers drawn from the exact grid posterior (linear-amplitude models).
 
     A coarse grid is enough here (narrow posteriors are zoomed automatically);
     callers fitting many sources with one set-up pass ``grid`` to reuse it.
+    ``columns``: the parameters sampled (default all).
     """
     if grid is None:
         grid = GridPosterior(bands, model=model, prior=prior, calibration=calibration,
@@ -84,16 +185,21 @@ def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_wa
         _, extra = grid.summarise(phot.flux, err, phot.limit_only, n_draws=4 * n_walkers, n_ppp=2,
                                   rng=rng, keep_draws=True)
     d = extra["draws"]
-    p0 = np.column_stack([d[n][0] for n in model.param_names])
+    p0 = np.column_stack([d[n][0] for n in (columns or model.param_names)])
     lp = post_fn(p0)
+    lp = lp[:, 0] if lp.ndim == 2 else lp
     p0 = p0[np.isfinite(lp)]
     if len(p0) < n_walkers:
         return None
     return p0[:n_walkers]
 
 
-def _start_from_optimum(post_fn, names, prior, n_walkers, rng):
+def _start_from_optimum(post, names, prior, n_walkers, rng):
     """Deterministic optimum (Halton design over the prior, then Nelder-Mead), plus a small ball."""
+    def post_fn(x):
+        lp = post(x)
+        return lp[:, 0] if lp.ndim == 2 else lp
+
     lo, hi = prior.bounds(names)
     finite = np.isfinite(lo) & np.isfinite(hi)
     sd = np.array([_prior_sd(prior[n]) for n in names])
@@ -116,9 +222,13 @@ def _start_from_optimum(post_fn, names, prior, n_walkers, rng):
     return p0[ok][:n_walkers]
 
 
-def _autocorr(chain):
-    """tau per parameter (tol=0: an estimate whatever the length)."""
-    return emcee.autocorr.integrated_time(chain, tol=0)
+def _diagnostics(chain):
+    """Rank-normalised bulk ESS, split R-hat and tau = draws / ESS per parameter of a (steps, walkers, d) chain."""
+    x = np.moveaxis(chain, 1, 0)  # (walkers, steps, d)
+    ess = np.array([ess_bulk(x[..., j]) for j in range(x.shape[2])])
+    rh = np.array([rhat(x[..., j]) for j in range(x.shape[2])])
+    tau = x.shape[0] * x.shape[1] / ess
+    return ess, rh, tau
 
 
 def _moves():
@@ -130,41 +240,47 @@ def _moves():
 
 
 def _run_chain(post_fn, p0, seed, *, ess_target, check_every, max_steps, key_idx):
+    """Run emcee until the key parameters reach ``ess_target`` with R-hat < 1.01, or ``max_steps``."""
     nw, nd = p0.shape
     sampler = emcee.EnsembleSampler(nw, nd, post_fn, vectorize=True, moves=_moves())
     state = emcee.State(p0, random_state=np.random.RandomState(seed).get_state())
-    old_tau = np.inf
-    tau = np.full(nd, 1.0)
+    tau = np.full(nd, check_every / 10.0)
     converged = False
+    burn = 0
     while sampler.iteration < max_steps:
-        state = sampler.run_mcmc(state, check_every, progress=False)
-        if np.isfinite(old_tau).all() and sampler.iteration < (_TAU_LENGTH + 2) * np.max(tau):
-            continue  # too short to pass the length rule yet: skip the autocorrelation estimate
+        state = sampler.run_mcmc(state, min(check_every, max_steps - sampler.iteration), progress=False)
         chain = sampler.get_chain()
-        tau = _autocorr(chain)
-        burn = int(np.ceil(2 * np.max(tau)))
-        n_kept = chain.shape[0] - burn
-        ess = nw * n_kept / tau
-        long_enough = n_kept > _TAU_LENGTH * np.max(tau)
-        stable = np.all(np.abs(old_tau - tau) < _TAU_STABLE * tau)
-        old_tau = tau
-        if long_enough and stable and np.all(ess[key_idx] >= ess_target):
+        burn = int(min(chain.shape[0] // 2, np.ceil(_BURN_TAU * np.max(tau))))
+        if (chain.shape[0] - burn) * nw < ess_target:
+            continue  # cannot have enough effective draws yet
+        # a cheap estimate first (emcee's autocorrelation time); the rank-normalised
+        # diagnostics only when it says the target may be reached
+        tau_fast = emcee.autocorr.integrated_time(chain[burn:], tol=0)
+        if np.any(nw * (chain.shape[0] - burn) / tau_fast[key_idx] < 0.8 * ess_target):
+            tau = tau_fast
+            continue
+        ess, rh, tau = _diagnostics(chain[burn:])
+        burn = int(min(chain.shape[0] // 2, np.ceil(_BURN_TAU * np.max(tau))))
+        if (np.all(ess[key_idx] >= ess_target) and np.all(rh[key_idx] < _RHAT_MAX)
+                and chain.shape[0] - burn > _TAU_LENGTH * np.max(tau)):
             converged = True
             break
-    return sampler, tau, burn, converged
+    return sampler, burn, converged
 
 
 def fit_source(flux, flux_err, bands, *, model=None, prior=None, calibration=None,
-               upper_limits=None, seed=None, n_walkers=64, ess_target=1000, max_steps=20000,
-               check_every=100, start="auto", start_grid=None, source_id=None):
+               upper_limits=None, seed=None, n_walkers=defaults.N_WALKERS, ess_target=defaults.ESS_TARGET,
+               max_steps=defaults.MAX_STEPS, check_every=defaults.CHECK_EVERY, start="auto", start_grid=None,
+               source_id=None, marginalise=True):
     """MCMC posterior of one source's SED parameters.
 
     Parameters
     ----------
-    flux, flux_err : Quantity or array_like, shape (n_bands,)
-        Flux densities and 1-sigma errors, in the order of ``bands``; a bare
-        number is in Jy. Negative and low-S/N fluxes are used as measured.
-        NaN in both flux and error marks an unobserved band.
+    flux, flux_err : Quantity, array_like or masked array, shape (n_bands,)
+        Flux densities and 1-sigma errors, in the order of ``bands``. A bare
+        number is in Jy (with a warning saying so). Negative and low-S/N
+        fluxes are used as measured. NaN in both flux and error, or a masked
+        entry, marks an unobserved band.
     bands : BandSet
     model : SEDModel, optional, keyword-only
         Default :func:`default_model`: optically thin modified blackbody with
@@ -174,20 +290,18 @@ def fit_source(flux, flux_err, bands, *, model=None, prior=None, calibration=Non
         Priors per parameter; entries given replace the model's defaults
         (``model.default_prior()``), the rest keep them.
     calibration : Calibration or mapping, optional
-        Calibration groups, e.g. ``{"spire": (["b250", "b350", "b500"], 0.05)}``.
+        Calibration groups, e.g. ``{"long": (["b250", "b350", "b500"], 0.05)}``.
     upper_limits : list of band names or bool array, optional
         Bands known only as upper limits: ``flux`` holds the limit, ``flux_err``
         its 1-sigma value (e.g. limit / 3 for a 3-sigma limit).
     seed : int or SeedSequence, optional
-        Makes the run bit-for-bit repeatable.
+        Makes the run bit-for-bit repeatable; None means 0 (as everywhere in sedtemp).
     n_walkers : int
-        emcee walkers. The log posterior is vectorised over walkers, so more
-        walkers cost little per step while the chain-length rule (50 tau)
-        fixes the number of steps: 64 gave ~1.2x the effective samples per
-        second of 48 and ~1.6x of 32 in benchmarks/run.py.
+        emcee walkers (default :data:`sedtemp.fit.defaults.N_WALKERS`).
     ess_target : float
         Stop when T and beta (or all parameters, if neither) reach this
-        effective sample size, the chain is > 50 tau long and tau is stable.
+        rank-normalised bulk ESS with split R-hat < 1.01 and the kept chain
+        is > 10 autocorrelation times long.
     max_steps : int
         Cap on steps; a run that hits it is flagged ``not_converged``.
     check_every : int
@@ -200,6 +314,11 @@ def fit_source(flux, flux_err, bands, *, model=None, prior=None, calibration=Non
         reused for the start when fitting many sources.
     source_id : optional
         Named in error messages.
+    marginalise : bool
+        For linear-amplitude models, sample (T, beta) on the posterior with
+        the amplitude integrated out and draw the amplitude afterwards from
+        its conditional (:class:`MarginalLogPosterior`); False samples all
+        parameters jointly.
 
     Returns
     -------
@@ -208,13 +327,15 @@ def fit_source(flux, flux_err, bands, *, model=None, prior=None, calibration=Non
     Raises
     ------
     InputError
-        Wrong flux unit, NaN or non-positive errors, fewer usable bands than
-        free parameters, a prior for an unknown parameter.
+        Wrong flux unit, NaN or non-positive errors, shapes that do not match
+        the bands, fewer usable bands than free parameters, a prior for an
+        unknown parameter.
     """
     model = default_model() if model is None else model
     names = tuple(model.param_names)
     prior = resolve_prior(model, prior)
-    phot = prepare(flux, flux_err, bands.names, upper_limits=upper_limits)
+    phot = prepare(flux, flux_err, bands.names, upper_limits=upper_limits,
+                   source_label=None if source_id is None else [source_id])
     if phot.flux.shape[0] != 1:
         raise InputError(f"fit_source fits one source; got {phot.flux.shape[0]} rows (use grid_posterior or the batch runner)")
     require_bands(phot, len(names), bands.names, source_id)
@@ -224,65 +345,73 @@ def fit_source(flux, flux_err, bands, *, model=None, prior=None, calibration=Non
     used = ~phot.missing[0]
     like = PhotometryLikelihood(phot.flux[0, used], phot.err[0, used], limit_only=phot.limit_only[0, used],
                                 calibration=None if cal is None else cal[used])
-    post = LogPosterior(model, bands, like, prior, used)
-    ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
+    gridable = model.amplitude_name is not None and set(names) - {model.amplitude_name} in ({"T"}, {"T", "beta"})
+    marginal = gridable and marginalise and start != "optimum"
+    if marginal:
+        post = MarginalLogPosterior(model, bands, like, prior, used, None if cal is None else cal[used])
+        sampled = post.free
+    else:
+        post = LogPosterior(model, bands, like, prior, used)
+        sampled = names
+    ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(resolve_seed(seed))
     s_start, s_chain, s_ppp = ss.spawn(3)
     rng = np.random.default_rng(s_start)
     p0 = None
-    gridable = model.amplitude_name is not None and set(names) - {model.amplitude_name} in ({"T"}, {"T", "beta"})
     if start in ("auto", "grid") and gridable:
-        p0 = _start_from_grid(post, model, bands, prior, calibration, phot, used, n_walkers, rng, start_grid)
+        p0 = _start_from_grid(post, model, bands, prior, calibration, phot, used, n_walkers, rng, start_grid,
+                              columns=sampled)
     elif start == "grid":
         raise InputError(f"start='grid' needs a linear-amplitude model with T and beta; {type(model).__name__} is not")
     if p0 is None:
-        p0 = _start_from_optimum(post, names, prior, n_walkers, rng)
-    key_idx = [names.index(k) for k in ("T", "beta") if k in names] or list(range(len(names)))
+        p0 = _start_from_optimum(post, sampled, prior, n_walkers, rng)
+    key_idx = [sampled.index(k) for k in ("T", "beta") if k in sampled] or list(range(len(sampled)))
     chain_seed = int(s_chain.generate_state(1)[0])
-    sampler, tau, burn, converged = _run_chain(post, p0, chain_seed, ess_target=ess_target,
-                                               check_every=check_every, max_steps=max_steps, key_idx=key_idx)
-    return _make_result(sampler, tau, burn, converged, post, model, bands, prior, phot, used,
-                        np.random.default_rng(s_ppp), seed)
+    sampler, burn, converged = _run_chain(post, p0, chain_seed, ess_target=ess_target,
+                                          check_every=check_every, max_steps=max_steps, key_idx=key_idx)
+    chain, lnp = _full_chain(sampler, post, marginal, np.random.default_rng(s_ppp))
+    return _make_result(chain, lnp, sampler, burn, converged, post, model, bands, prior, phot, like,
+                        np.random.default_rng(s_ppp), seed, ess_target, key_idx)
 
 
-def _make_result(sampler, tau, burn, converged, post, model, bands, prior, phot, used, rng, seed):
-    names = post.names
+def _full_chain(sampler, post, marginal, rng):
+    """(steps, walkers, n_params) chain in the model's parameter order, and the log posterior.
+
+    For the marginal sampler the amplitude of every step is drawn from its
+    conditional given (T, beta) (the blobs hold its Gaussian mean and sd).
+    """
     chain = sampler.get_chain()
-    flat = sampler.get_chain(discard=burn, flat=True)
-    lnp = sampler.get_log_prob(discard=burn, flat=True)
+    lnp = sampler.get_log_prob()
+    if not marginal:
+        return chain, lnp
+    blobs = np.asarray(sampler.get_blobs(), float)  # (steps, walkers, 2)
+    mu, sd = blobs[..., 0], blobs[..., 1]
+    amp = post.amplitude.draw(mu, sd, rng.uniform(size=mu.shape + (post.amplitude.n_uniform,)))
+    full = post.full_theta(chain.reshape(-1, chain.shape[2]), np.log10(amp).ravel())
+    return full.reshape(chain.shape[:2] + (len(post.names),)), lnp
+
+
+def _make_result(chain, lnp_chain, sampler, burn, converged, post, model, bands, prior, phot, like, rng, seed,
+                 ess_target, key_idx):
+    names = tuple(model.param_names)
     nw = chain.shape[1]
-    # the same length criterion as the stopping rule, on the kept part of the chain
-    tau = _autocorr(chain[burn:])
-    if chain.shape[0] - burn <= _TAU_LENGTH * np.max(tau):
+    kept = chain[burn:]
+    flat = kept.reshape(-1, len(names))
+    lnp = lnp_chain[burn:].reshape(-1)
+    ess, rh, tau = _diagnostics(kept)
+    key = [names.index(n) for n in ("T", "beta") if n in names] or list(range(len(names)))
+    if not (np.all(ess[key] >= ess_target) and np.all(rh[key] < _RHAT_MAX)):
         converged = False
-    ess = nw * (chain.shape[0] - burn) / tau
     samples = {n: flat[:, j].copy() for j, n in enumerate(names)}
+    full_post = LogPosterior(model, bands, like, prior, post.used)
     imap = int(np.argmax(lnp))
     map_params = {n: float(flat[imap, j]) for j, n in enumerate(names)}
-    m_map = post.model_band_fluxes(flat[imap][None])
-    chi2_map = float(post.likelihood.chi2_and_logdet(m_map)[0][0])
+    m_map = full_post.model_band_fluxes(flat[imap][None])
+    chi2_map = float(like.chi2_and_logdet(m_map)[0][0])
     idx = rng.choice(len(flat), size=min(_PPP_DRAWS, len(flat)), replace=False)
-    m = post.model_band_fluxes(flat[idx])
-    chi_obs, chi_rep = post.likelihood.predictive_chi2(m, rng)
-    like = post.likelihood
+    chi_obs, chi_rep = like.predictive_chi2(full_post.model_band_fluxes(flat[idx]), rng)
     ppp = float(np.mean(chi_rep >= chi_obs))
     n_used = int(like.detected.sum())
-    flags = []
-    if ppp < POOR_FIT_PPP:
-        flags.append("poor_fit")
-        warnings.warn(f"posterior predictive p-value {ppp:.3g} < {POOR_FIT_PPP}: the model does not "
-                      "describe the data (flag 'poor_fit')", SedtempWarning, stacklevel=3)
-    if not converged:
-        flags.append("not_converged")
-        warnings.warn(f"MCMC not converged after {chain.shape[0]} steps (tau = {np.round(tau, 1)}); "
-                      "flag 'not_converged'", ConvergenceWarning, stacklevel=3)
-    w = np.ones(len(flat))
-    for n in names:
-        pr = prior[n]
-        fl = trust_flags(n, samples[n], w, pr.low, pr.high, _prior_sd(pr))
-        if any("prior_low" in f or "prior_high" in f for f in fl):
-            warnings.warn(f"posterior of {n} piles up against its prior edge [{pr.low:g}, {pr.high:g}]",
-                          PriorEdgeWarning, stacklevel=3)
-        flags += fl
+    flags = _flags(samples, names, prior, ppp, converged, kept.shape[0], ess, rh, ess_target)
     return FitResult(
         samples=samples, log_prob=lnp, param_names=names, units=dict(model.param_units),
         ess={n: float(e) for n, e in zip(names, ess)}, tau={n: float(t) for n, t in zip(names, tau)},
@@ -290,5 +419,28 @@ def _make_result(sampler, tau, burn, converged, post, model, bands, prior, phot,
         flags=tuple(flags), map_params=map_params, chi2_map=chi2_map, dof=n_used - len(names), ppp=ppp,
         n_bands_used=n_used, model=model, bands=bands, flux_si=phot.flux[0], err_si=phot.err[0],
         limit_only=phot.limit_only[0], chain=chain, n_steps=chain.shape[0], n_walkers=nw, burn=burn,
-        seed=seed,
+        seed=seed, rhat={n: float(r) for n, r in zip(names, rh)}, log_prob_chain=lnp_chain,
+        sampled=tuple(post.free) if isinstance(post, MarginalLogPosterior) else names,
     )
+
+
+def _flags(samples, names, prior, ppp, converged, n_kept, ess, rh, ess_target):
+    flags = []
+    if ppp < POOR_FIT_PPP:
+        flags.append("poor_fit")
+        warnings.warn(f"posterior predictive p-value {ppp:.3g} < {POOR_FIT_PPP}: the model does not "
+                      "describe the data (flag 'poor_fit')", SedtempWarning, stacklevel=4)
+    if not converged:
+        flags.append("not_converged")
+        warnings.warn(f"MCMC not converged: {n_kept} kept steps, bulk ESS {np.round(ess, 0)} "
+                      f"(target {ess_target:g}), R-hat {np.round(rh, 3)}; flag 'not_converged'",
+                      ConvergenceWarning, stacklevel=4)
+    w = np.ones(len(next(iter(samples.values()))))
+    for n in names:
+        pr = prior[n]
+        fl = trust_flags(n, samples[n], w, pr.low, pr.high, _prior_sd(pr))
+        if any("prior_low" in f or "prior_high" in f for f in fl):
+            warnings.warn(f"posterior of {n} piles up against its prior edge [{pr.low:g}, {pr.high:g}]",
+                          PriorEdgeWarning, stacklevel=4)
+        flags += fl
+    return flags

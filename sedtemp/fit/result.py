@@ -26,12 +26,15 @@ class FitResult:
     param_names : tuple of str
     units : dict of str -> str
     ess, tau : dict of str -> float
-        Effective sample size and integrated autocorrelation time (steps) per parameter.
+        Rank-normalised bulk effective sample size (Vehtari et al. 2021) and
+        integrated autocorrelation time (steps, = draws / ESS) per parameter.
+    rhat : dict of str -> float
+        Rank-normalised split R-hat per parameter (walkers as chains).
     acceptance_fraction : float
         Mean acceptance fraction over walkers.
     converged : bool
-        True when the chain is > ``50 tau`` long, tau was stable and every
-        parameter reached the ESS target.
+        True when T and beta reached the ESS target with R-hat < 1.01 and the
+        kept chain is > 10 tau long.
     flags : tuple of str
         Warnings that also went out as Python warnings (see README, "Flags").
     map_params : dict of str -> float
@@ -67,6 +70,46 @@ class FitResult:
     n_walkers: int = 0
     burn: int = 0
     seed: object = None
+    rhat: dict = field(default_factory=dict)
+    log_prob_chain: np.ndarray | None = field(default=None, repr=False)
+    sampled: tuple = ()
+
+    def get_chain(self, flat: bool = False, discard: int = 0, thin: int = 1) -> np.ndarray:
+        """The stored chain, like emcee's ``get_chain``: (steps, walkers, n_params) or flattened.
+
+        Columns in ``param_names`` order (with the marginal sampler the
+        amplitude column holds draws from its conditional at every step).
+
+        Raises
+        ------
+        InputError
+            When the result holds no chain (grid results).
+        """
+        from ..errors import InputError
+
+        if self.chain is None:
+            raise InputError("this FitResult holds no chain (grid fit); refit with fit_source for a chain")
+        c = self.chain[int(discard)::int(thin)]
+        return c.reshape(-1, c.shape[-1]) if flat else c
+
+    def to_arviz(self):
+        """The chain as an ``arviz.InferenceData`` (walkers as chains, burn-in discarded).
+
+        Raises
+        ------
+        ImportError
+            If arviz is not installed (``pip install "sedtemp[arviz]"``).
+        """
+        try:
+            import arviz as az
+        except ImportError as err:
+            raise ImportError('FitResult.to_arviz needs arviz: pip install "sedtemp[arviz]"') from err
+        c = self.get_chain(discard=self.burn)
+        post = {n: np.swapaxes(c[..., j], 0, 1) for j, n in enumerate(self.param_names)}
+        stats = None
+        if self.log_prob_chain is not None:
+            stats = {"lp": np.swapaxes(self.log_prob_chain[self.burn:], 0, 1)}
+        return az.from_dict(posterior=post, sample_stats=stats)
 
     @property
     def chi2_reduced(self) -> float:
@@ -83,6 +126,8 @@ class FitResult:
             out["T_beta_corr"] = float(np.corrcoef(self.samples["T"], self.samples["beta"])[0, 1])
         for name in self.param_names:
             out[f"{name}_ess"] = float(self.ess[name])
+            if name in self.rhat:
+                out[f"{name}_rhat"] = float(self.rhat[name])
         out.update(
             chi2_map=float(self.chi2_map), dof=int(self.dof), chi2_reduced=float(self.chi2_reduced),
             ppp=float(self.ppp), n_bands_used=int(self.n_bands_used),

@@ -8,8 +8,14 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["QUANTILES", "quantile_columns", "EDGE_FRACTION", "EDGE_MASS", "PRIOR_WIDTH_RATIO",
-           "POOR_FIT_PPP"]
+__all__ = [
+    "EDGE_FRACTION",
+    "EDGE_MASS",
+    "POOR_FIT_PPP",
+    "PRIOR_WIDTH_RATIO",
+    "QUANTILES",
+    "quantile_columns",
+]
 
 #: Posterior quantiles reported for every parameter: column suffix -> probability.
 QUANTILES = {"p2_5": 0.025, "p16": 0.16, "median": 0.5, "p84": 0.84, "p97_5": 0.975}

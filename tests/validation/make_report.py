@@ -385,7 +385,35 @@ def write_markdown(out, summary, elapsed):
           "flagged extra_heating or shielded (target at S/N 20: <= 5 %; <= 2 % expected for a calibrated "
           "posterior). Flag columns in %; +- is the binomial sd.", "",
           _compare_table(summary["compare"]), "", "![compare](compare_flags.png)", ""]
+    if "fixed_truth" in summary:
+        L += _fixed_truth_lines(summary["fixed_truth"])
     (out / "report.md").write_text("\n".join(L))
+
+
+def run_fixed_truth(n, seed):
+    """Fixed-truth bias and 68 % coverage of T at survey depth 10 (test_fixed_truth.py design)."""
+    from test_fixed_truth import fixed_truth
+
+    from sedtemp.priors import UniformAmplitude
+
+    out = {}
+    for T in (8.0, 12.0, 20.0):
+        b, c = fixed_truth(T, n=n, seed=seed)
+        bu, cu = fixed_truth(T, n=n, seed=seed, prior={"log10_mass": UniformAmplitude(-8, 13)})
+        out[f"{T:g}"] = {"bias": b, "cov68": c, "bias_linear_prior": bu, "cov68_linear_prior": cu, "n": n}
+    return out
+
+
+def _fixed_truth_lines(res):
+    L = ["## Fixed truth at survey depth", "",
+         "Six top-hat bands 70-500 um, every band's noise = peak band flux / 10, beta = 1.8, grid fitter, "
+         "default priors. Bias = mean (posterior median - truth) / posterior sd; target |bias| <= 0.3 and "
+         "68 % coverage >= 62 %. Last columns: the same with a prior uniform in the linear mass.", "",
+         "| T (K) | n | bias | 68 % coverage | bias (linear prior) | coverage (linear prior) |", "|---|---|---|---|---|---|"]
+    for key, r in res.items():
+        L.append(f"| {key} | {r['n']} | {r['bias']:+.2f} | {100 * r['cov68']:.0f} % | {r['bias_linear_prior']:+.2f} | "
+                 f"{100 * r['cov68_linear_prior']:.0f} % |")
+    return L + [""]
 
 
 def main(argv=None):
@@ -416,6 +444,8 @@ def main(argv=None):
         log("comparison stage done")
     summary["tbeta"], scatter = run_lsq(sz["lsq"], args.seed)
     log("least squares done")
+    summary["fixed_truth"] = run_fixed_truth(100 if args.quick else 300, 8)
+    log("fixed truth done")
     for key in ("grid_default", "grid_fine", "mcmc", "grid_fine_depth"):
         fig_ranks(summary[key], key, out / f"{key}_ranks.png")
     fig_coverage({k: summary[k] for k in ("grid_default", "grid_fine", "mcmc")}, out / "coverage_vs_snr.png")
