@@ -24,7 +24,9 @@ from .equilibrium import equilibrium_temperature, implied_U
 from .opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
 from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
 from .planck import planck_nu
-from .priors import Gaussian, LogUniform, Prior, Uniform, UniformAmplitude
+from .priors import Gaussian, LogUniform, LogUniformAmplitude, Prior, Uniform, UniformAmplitude
+from .simulate import simulate_photometry
+from .models import get_model
 
 
 __all__ = [
@@ -58,6 +60,9 @@ __all__ = [
     "LogUniform",
     "Gaussian",
     "UniformAmplitude",
+    "LogUniformAmplitude",
+    "simulate_photometry",
+    "get_model",
     "SedtempError",
     "InputError",
     "CatalogError",

@@ -117,7 +117,7 @@ def test_extra_heating_from_an_mcmc_fit_with_mass(bands, model):
     # (P_inj x 1 M_sun, the simulated dust mass) must lie inside the 95 % intervals.
     t_hot = 1.5 * _t_eq(FIELD)
     f, e, _ = simulate(model, bands, np.array([[0.0, t_hot, BETA_TRUE]]), 20.0, np.random.default_rng(31))
-    fit = fit_source(f[0], e[0], bands, model=model, seed=5)
+    fit = fit_source(f[0] * u.Jy, e[0] * u.Jy, bands, model=model, seed=5)
     comp = compare(fit, FIELD)
     p_inj = float(emitted_power(t_hot, OPACITY, beta=BETA_TRUE) - absorbed_power(FIELD, OPACITY, beta=BETA_TRUE))
     cols = comp.columns()

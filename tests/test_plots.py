@@ -47,7 +47,7 @@ def fit():
         # A short fit: whether it meets every convergence criterion is tested in
         # the fit tests; the plots only need its draws and chain.
         warnings.simplefilter("ignore", ConvergenceWarning)
-        return fit_source(flux, flux_err, bands, model=model, ess_target=200, seed=1,
+        return fit_source(flux * u.Jy, flux_err * u.Jy, bands, model=model, ess_target=200, seed=1,
                           upper_limits=["b500"])
 
 

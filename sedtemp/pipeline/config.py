@@ -50,12 +50,14 @@ named here.
     physical absorption of starlight. The same opacity is used to fit and to
     predict.
 ``[priors.PARAM]``
-    ``kind`` ("uniform" | "loguniform" | "gaussian" | "uniform_amplitude"),
+    ``kind`` ("uniform" | "loguniform" | "gaussian" | "uniform_amplitude" |
+    "log_uniform_amplitude"; the default amplitude prior is log-uniform),
     ``low``, ``high``, ``mean``, ``sigma``.
 ``[fit]``
     ``method`` ("grid" | "mcmc", default "grid"), ``mcmc_sources`` (ids also
     fitted by MCMC), ``n_T`` (100), ``n_beta`` (60), ``n_draws`` (400),
-    ``n_walkers`` (32), ``ess_target`` (400), ``max_steps`` (20000).
+    ``n_walkers`` (64), ``ess_target`` (1000), ``max_steps`` (20000): the
+    defaults of :func:`sedtemp.fit.fit_source` (:mod:`sedtemp.fit.defaults`).
 ``[field]``
     ``A_V`` (float, mag) or ``A_V_column``; ``uncertainty`` (fractional
     1-sigma of the field strength, default 0); ``uncertainty_shared``
@@ -110,6 +112,7 @@ import astropy.units as u
 
 from ..errors import ConfigError, InputError
 from ..fields import FIELD_GROUP  # the entry-point group of field kinds, defined once
+from ..fit import defaults as FIT_DEFAULTS
 from .checks import MAX_WORKERS, check_far_ir, check_sections
 
 __all__ = [
@@ -157,9 +160,11 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
                 "dec_column": (str, None), "units": (dict, {})},
     "model": {"name": (str, "thin"), "amplitude": (str, "mass"), "beta": (_NUM, None),
               "solid_angle": ((str, *_NUM), None), "opacity": (dict, None)},
-    "fit": {"method": (str, "grid"), "mcmc_sources": (list, []), "n_T": (int, 100),
-            "n_beta": (int, 60), "n_draws": (int, 400), "n_walkers": (int, 32),
-            "ess_target": (_NUM, 400), "max_steps": (int, 20000)},
+    # the same defaults as the Python API (one place: sedtemp.fit.defaults)
+    "fit": {"method": (str, "grid"), "mcmc_sources": (list, []), "n_T": (int, FIT_DEFAULTS.N_T),
+            "n_beta": (int, FIT_DEFAULTS.N_BETA), "n_draws": (int, FIT_DEFAULTS.N_DRAWS),
+            "n_walkers": (int, FIT_DEFAULTS.N_WALKERS), "ess_target": (_NUM, FIT_DEFAULTS.ESS_TARGET),
+            "max_steps": (int, FIT_DEFAULTS.MAX_STEPS)},
     "field": {"A_V": (_NUM, 0.0), "A_V_column": (str, None), "uncertainty": (_NUM, 0.0),
               "uncertainty_shared": (bool, False), "projected": (bool, False), "components": (list, [])},
     "compare": {"enabled": (bool, True), "thresholds": (dict, {}), "opacity_uncertainty": (_NUM, 0.3)},
@@ -414,7 +419,7 @@ class Workflow:
         opts = {}
         if spec["opacity"] is not None:
             opts["opacity"] = self._opacity()
-        if spec["name"] == "thin" or spec["name"] not in ("thick", "two_temperature"):
+        if spec["name"] != "thick":
             opts["amplitude"] = spec["amplitude"]
             if spec["amplitude"] == "mass":
                 opts["distance"] = distance
@@ -465,7 +470,8 @@ class Workflow:
 
         kinds = {"uniform": (P.Uniform, ("low", "high")), "loguniform": (P.LogUniform, ("low", "high")),
                  "gaussian": (P.Gaussian, ("mean", "sigma", "low", "high")),
-                 "uniform_amplitude": (P.UniformAmplitude, ("low", "high"))}
+                 "uniform_amplitude": (P.UniformAmplitude, ("low", "high")),
+                 "log_uniform_amplitude": (P.LogUniformAmplitude, ("low", "high"))}
         out = {}
         for name, spec in self.priors.items():
             if spec["kind"] not in kinds:

@@ -129,6 +129,8 @@ def _families() -> dict:
         out[f"{p}_map"] = ColumnSpec(f"{p}_map", unit, "f", f"{text}: maximum a posteriori", fmt, ucd, 1)
         out[f"{p}_ess"] = ColumnSpec(f"{p}_ess", "", "f", f"{text}: effective sample size (MCMC; NaN for grid)",
                                      ".1f", None, 2)
+        out[f"{p}_rhat"] = ColumnSpec(f"{p}_rhat", "", "f", f"{text}: rank-normalised split R-hat "
+                                      "(Vehtari et al. 2021; MCMC; NaN for grid)", ".4f", None, 2)
         out[DRAW_PREFIX + p] = ColumnSpec(DRAW_PREFIX + p, unit, "f", f"{text}: posterior draws", fmt, ucd, 7)
     for q, (unit, text, ucd, fmt) in _COMPARE.items():
         for k, stat in _STAT_TEXT.items():
