@@ -311,7 +311,7 @@ def _hdulist(maps, wcs, meta, *, with_field) -> fits.HDUList:
     if with_field:
         for q in ("median", "p16", "p84"):
             hdul.append(_image(f"T_EQ_{_QUANTS[q]}", _get(maps, f"cmp_T_eq_{q}"), wcs, "K",
-                               f"equilibrium temperature in the modelled field, {q}"))
+                               f"T_eq of the modelled field, {q}"))
         hdul.append(_image("P_WARMER", _get(maps, "cmp_p_warmer"), wcs, "", "P(T_fit > T_eq)"))
         hdul.append(_image("T_RATIO", _get(maps, "cmp_ratio_median"), wcs, "", "median of T_fit / T_eq"))
         cf = _image("COMPARE_FLAG", _get(maps, "cmp_flag", 0), wcs, "", "comparison flag code (0: not compared)")
