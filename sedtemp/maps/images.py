@@ -30,9 +30,9 @@ __all__ = ["FWHM_TO_SIGMA", "BandImage", "read_image", "read_noise", "beam_area_
 #: Gaussian sigma = FWHM * FWHM_TO_SIGMA (exact: 1 / (2 sqrt(2 ln 2))).
 FWHM_TO_SIGMA = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
 _SI_INTENSITY = u.W / u.m**2 / u.Hz / u.sr
-#: A convolved pixel keeps a value only if at least this fraction of its
+#: A convolved pixel keeps a value only if at least this fraction of its (corner pixels: 1/4)
 #: kernel weight falls on valid input pixels (edges and blanked regions).
-_MIN_KERNEL_WEIGHT = 0.5
+_MIN_KERNEL_WEIGHT = 0.2
 #: Kernel sigma (pixels) below which the beams count as equal: the kernel
 #: would be a delta function on the pixel grid.
 _MIN_KERNEL_SIGMA_PIX = 0.05
@@ -215,7 +215,7 @@ def convolve_to_beam(img: BandImage, target_fwhm_deg: float) -> BandImage:
     The kernel is a Gaussian of FWHM sqrt(theta^2 - theta_i^2) on the
     image's own pixels (normalised to unit sum: surface brightness is kept).
     Around blanked pixels and edges the kernel is renormalised over the
-    valid pixels; a pixel with under half of the kernel weight on valid
+    valid pixels; a pixel with under a fifth of the kernel weight on valid
     pixels becomes NaN. The noise variance is the exact one of the weighted
     sum, sum_j w_j^2 sigma_j^2, for independent input pixels; the output
     pixels are then correlated on the beam scale.
