@@ -9,9 +9,21 @@ from astropy.io import fits
 from astropy.wcs import WCS
 
 from sedtemp.errors import InputError
-from sedtemp.maps import COMPARE_CODES, SKIP_CODES, fit_maps, make_map_demo, pull_statistics
+from sedtemp.maps import (
+    COMPARE_CODES,
+    SKIP_CODES,
+    fit_maps,
+    make_map_demo,
+    pull_statistics,
+)
 from sedtemp.maps.demo import demo_wcs
-from sedtemp.maps.images import FWHM_TO_SIGMA, BandImage, beam_area_sr, convolve_to_beam, read_image
+from sedtemp.maps.images import (
+    FWHM_TO_SIGMA,
+    BandImage,
+    beam_area_sr,
+    convolve_to_beam,
+    read_image,
+)
 
 MJY_SR_SI = 1e-20  # 1 MJy/sr in W m^-2 Hz^-1 sr^-1 (exact: 1e6 * 1e-26)
 
@@ -78,7 +90,7 @@ def test_convolution_to_a_smaller_beam_is_refused():
 
 # ------------------------------------------------------------------ units and headers
 def test_surface_brightness_units_convert_to_si():
-    d, _, _, f, _ = read_image(_hdu(np.ones((4, 4)), bunit="MJy/sr"), "b")
+    _d, _, _, f, _ = read_image(_hdu(np.ones((4, 4)), bunit="MJy/sr"), "b")
     assert f == pytest.approx(MJY_SR_SI, rel=1e-12)
     _, _, _, f2, _ = read_image(_hdu(np.ones((4, 4)), bunit="Jy/sr"), "b")
     assert f2 == pytest.approx(1e-26, rel=1e-12)

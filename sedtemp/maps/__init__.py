@@ -14,6 +14,19 @@ from .fitting import default_map_model, fit_maps
 from .tiles import FLAG_BITS, SKIP_CODES
 from .workflow import load_map_workflow, parse_map_workflow, run_map_workflow
 
-__all__ = ["fit_maps", "default_map_model", "run_map_workflow", "load_map_workflow", "parse_map_workflow",
-           "make_map_demo", "run_map_demo", "pull_statistics", "quicklook_figure", "save_quicklook",
-           "compare_pixels", "COMPARE_CODES", "FLAG_BITS", "SKIP_CODES"]
+__all__ = [
+           "COMPARE_CODES",
+           "FLAG_BITS",
+           "SKIP_CODES",
+           "compare_pixels",
+           "default_map_model",
+           "fit_maps",
+           "load_map_workflow",
+           "make_map_demo",
+           "parse_map_workflow",
+           "pull_statistics",
+           "quicklook_figure",
+           "run_map_demo",
+           "run_map_workflow",
+           "save_quicklook",
+]

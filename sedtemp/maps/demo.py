@@ -23,8 +23,17 @@ from ..bands import Band, BandSet
 from .fitting import default_map_model
 from .images import BandImage, convolve_to_beam
 
-__all__ = ["DEMO_BANDS", "DEMO_CENTER", "DEMO_DISTANCE_PC", "demo_wcs", "truth_maps", "make_map_demo",
-           "demo_field", "pull_statistics", "run_map_demo"]
+__all__ = [
+    "DEMO_BANDS",
+    "DEMO_CENTER",
+    "DEMO_DISTANCE_PC",
+    "demo_field",
+    "demo_wcs",
+    "make_map_demo",
+    "pull_statistics",
+    "run_map_demo",
+    "truth_maps",
+]
 
 #: Invented bands: name -> (wavelength um, beam FWHM arcsec, pixel arcsec, noise MJy/sr per pixel).
 DEMO_BANDS = {
@@ -136,7 +145,7 @@ def make_map_demo(*, seed: int = 0, scale: float = 1.0, smooth: bool = False, no
     out_wcs = None
     for name, (lam, fwhm, pix, sig) in DEMO_BANDS.items():
         pix = pix * scale
-        n = int(round(_FIELD_ARCMIN * 60 / pix))
+        n = round(_FIELD_ARCMIN * 60 / pix)
         wcs = demo_wcs(pix, n)
         band = Band.monochromatic(name, lam * u.um)
         bands.append(band)

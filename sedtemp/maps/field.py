@@ -34,7 +34,7 @@ from ..compare import FLAGS, compare_draws
 from ..errors import InputError
 from ..fields import build_field
 
-__all__ = ["COMPARE_CODES", "FieldSpec", "pixel_fields", "compare_pixels"]
+__all__ = ["COMPARE_CODES", "FieldSpec", "compare_pixels", "pixel_fields"]
 
 #: Integer code of each comparison flag in the COMPARE_FLAG map (0: not compared).
 COMPARE_CODES = {name: i + 1 for i, name in enumerate(FLAGS)}

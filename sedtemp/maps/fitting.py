@@ -31,9 +31,16 @@ from ..models import ModifiedBlackbody
 from ..seeds import resolve_seed
 from .field import COMPARE_CODES, FieldSpec
 from .images import independent_beams, match_images, reproject_plain
-from .tiles import FLAG_BITS, SKIP_CODES, TileTask, prepare_folder, run_tiles, tile_origins
+from .tiles import (
+    FLAG_BITS,
+    SKIP_CODES,
+    TileTask,
+    prepare_folder,
+    run_tiles,
+    tile_origins,
+)
 
-__all__ = ["default_map_model", "fit_maps", "QUANTITY_EXTENSIONS"]
+__all__ = ["QUANTITY_EXTENSIONS", "default_map_model", "fit_maps"]
 
 #: Summary column suffixes written as maps, and their extension suffixes.
 _QUANTS = {"median": "MEDIAN", "p16": "P16", "p84": "P84"}

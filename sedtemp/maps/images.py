@@ -24,8 +24,17 @@ from astropy.wcs import WCS
 
 from ..errors import InputError
 
-__all__ = ["FWHM_TO_SIGMA", "BandImage", "read_image", "read_noise", "beam_area_sr",
-           "convolve_to_beam", "match_images", "reproject_plain", "independent_beams"]
+__all__ = [
+    "FWHM_TO_SIGMA",
+    "BandImage",
+    "beam_area_sr",
+    "convolve_to_beam",
+    "independent_beams",
+    "match_images",
+    "read_image",
+    "read_noise",
+    "reproject_plain",
+]
 
 #: Gaussian sigma = FWHM * FWHM_TO_SIGMA (exact: 1 / (2 sqrt(2 ln 2))).
 FWHM_TO_SIGMA = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
@@ -117,7 +126,13 @@ def _beam(header, beam, src, name):
 
 
 def beam_area_sr(fwhm_deg: float) -> float:
-    """Solid angle of a circular Gaussian beam, pi theta^2 / (4 ln 2), sr (exact)."""
+    """Solid angle of a circular Gaussian beam, pi theta^2 / (4 ln 2), sr (exact).
+
+    Examples
+    --------
+    >>> round(beam_area_sr(36 / 3600) * 1e8, 4)  # a 36 arcsec beam
+    3.4516
+    """
     theta = np.deg2rad(fwhm_deg)
     return float(np.pi * theta**2 / (4.0 * np.log(2.0)))
 
@@ -243,9 +258,9 @@ def convolve_to_beam(img: BandImage, target_fwhm_deg: float) -> BandImage:
     with np.errstate(invalid="ignore", divide="ignore"):
         data = np.where(keep, num / w, np.nan)
         noise = np.where(keep, np.sqrt(np.maximum(var, 0.0)) / w, np.nan)
-    hist = img.history + [f"band {img.name}: convolved with a Gaussian of FWHM "
+    hist = img.history + [(f"band {img.name}: convolved with a Gaussian of FWHM "
                           f"{np.sqrt(max(dfwhm2, 0.0)) * 3600:.4g} arcsec to a "
-                          f"{target_fwhm_deg * 3600:.4g} arcsec beam"]
+                          f"{target_fwhm_deg * 3600:.4g} arcsec beam")]
     return BandImage(img.name, data, noise, img.wcs, target_fwhm_deg, img.source, hist)
 
 

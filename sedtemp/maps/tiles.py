@@ -24,7 +24,7 @@ from ..errors import InputError
 from ..seeds import source_seed
 from .field import compare_pixels, pixel_fields
 
-__all__ = ["SKIP_CODES", "FLAG_BITS", "TileTask", "run_tile", "tile_origins", "prepare_folder", "run_tiles"]
+__all__ = ["FLAG_BITS", "SKIP_CODES", "TileTask", "prepare_folder", "run_tile", "run_tiles", "tile_origins"]
 
 log = logging.getLogger(__name__)
 
@@ -63,7 +63,13 @@ class TileTask:
 
 
 def tile_origins(shape, size: int) -> list[tuple[int, int]]:
-    """Top-left corners of the tiles covering ``shape`` (row-major)."""
+    """Top-left corners of the tiles covering ``shape`` (row-major).
+
+    Examples
+    --------
+    >>> tile_origins((5, 3), 2)
+    [(0, 0), (0, 2), (2, 0), (2, 2), (4, 0), (4, 2)]
+    """
     return [(y, x) for y in range(0, shape[0], size) for x in range(0, shape[1], size)]
 
 
