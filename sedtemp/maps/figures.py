@@ -82,7 +82,7 @@ def quicklook_figure(hdul: fits.HDUList, *, fig: Figure | None = None) -> Figure
         else:
             _panel(fig, (1, len(panels), k + 1), hdul[ext], title, label,
                    cmap="viridis" if ext.startswith("BETA") else "inferno")
-    fig.subplots_adjust(wspace=0.45, left=0.06, right=0.97)
+    fig.subplots_adjust(wspace=0.6, left=0.06, right=0.96)
     return fig
 
 
