@@ -152,7 +152,7 @@ def make_map_demo(*, seed: int = 0, scale: float = 1.0, smooth: bool = False, no
         inten = _intensity(model, band, truth_maps(wcs, smooth=smooth)) / mjy
         # the sky seen through this band's beam (a beam of zero width would be the truth itself)
         smoothed = convolve_to_beam(BandImage(name, inten, np.ones_like(inten), wcs, 1e-9), fwhm / 3600.0).data
-        # a pixel's noise: sig per output beam area for the coarsest pixel; white on the band's grid
+        # white noise of sd sig (MJy/sr) per pixel of the band's own grid
         noise = sig * noise_factor * np.ones_like(inten)
         data = smoothed + noise * rng.standard_normal(inten.shape)
         hdr = wcs.to_header()
