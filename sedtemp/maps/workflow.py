@@ -251,7 +251,8 @@ def run_map_workflow(path, *, output_dir=None, restart: bool = False, progress: 
     dict
         The report (also written to ``map-report.json``): ``maps``,
         ``figure``, ``n_pixels``, ``skipped``, ``fit_flags``,
-        ``compare_flags``, ``n_beams``, ``tiles_resumed``, ``seconds``.
+        ``compare_flags``, ``n_beams``, ``tiles_resumed``, ``seconds``;
+        and ``hdul``, the maps as an HDUList (not in the JSON file).
 
     Raises
     ------
