@@ -80,7 +80,8 @@ def quadrature_nodes(mu, s, a_lo, a_hi):
     """
     mu, s = np.broadcast_arrays(np.asarray(mu, float), np.asarray(s, float))
     top = np.minimum(a_hi, np.maximum(mu, a_lo) + _SPAN * s)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        # (an infinite decay or rise scale only ever enters through np.minimum with s)
         # data that want A below the lower bound: the integrand decays from a_lo
         # on the scale s^2 / (a_lo - mu)
         decay = np.where(mu < a_lo, s * s / np.maximum(a_lo - mu, 1e-300), s)

@@ -14,10 +14,9 @@ with two additions for maps:
   reprojected onto the output grid), e.g. ``U_map`` for the ISRF strength,
   and ``A_V`` may be a map too.
 
-:func:`compare_pixels` is the per-pixel comparison loop: one call of
-:func:`sedtemp.compare.compare_draws` per pixel. It is the only function
-the tiles call for the comparison, so a vectorised replacement with the
-same arguments can take its place.
+:func:`compare_pixels` compares a whole tile in one vectorised call of
+:func:`sedtemp.compare.compare_chunk`, which equals
+:func:`sedtemp.compare.compare_draws` pixel by pixel with the same seeds.
 """
 
 from __future__ import annotations
@@ -30,7 +29,7 @@ import numpy as np
 from astropy.coordinates import SkyCoord
 from astropy.io import fits
 
-from ..compare import FLAGS, compare_draws
+from ..compare import FLAGS, compare_chunk
 from ..errors import InputError
 from ..fields import build_field
 
@@ -161,7 +160,7 @@ def _field_or_none(comps, av):
 def compare_pixels(T_draws: np.ndarray, beta_draws: np.ndarray, fields: Sequence, opacity, *,
                    field_uncertainty=None, projected=False, thresholds=None, fit_flags=None,
                    seeds=None) -> dict:
-    """Compare the (T, beta) draws of each pixel with its own field: one compare_draws per pixel.
+    """Compare the (T, beta) draws of each pixel with its own field: one compare_chunk call per tile.
 
     Parameters
     ----------
@@ -183,19 +182,31 @@ def compare_pixels(T_draws: np.ndarray, beta_draws: np.ndarray, fields: Sequence
         0 = not compared).
     """
     n = T_draws.shape[0]
-    out = {k: np.full(n, np.nan) for k in ("T_eq_median", "T_eq_p16", "T_eq_p84", "p_warmer", "ratio_median")}
+    keys = ("T_eq_median", "T_eq_p16", "T_eq_p84", "p_warmer", "ratio_median")
+    out = {k: np.full(n, np.nan) for k in keys}
     out["flag"] = np.zeros(n, np.int16)
-    for k in range(n):  # per pixel for now: each pixel has its own field
-        if fields[k] is None or not np.all(np.isfinite(T_draws[k])):
-            continue
-        b = beta_draws[k]
-        b = None if not np.all(np.isfinite(b)) else b
-        c = compare_draws(T_draws[k] * u.K, b, fields[k], opacity, field_uncertainty=field_uncertainty,
-                          projected=projected, thresholds=thresholds,
-                          fit_flags=None if fit_flags is None else fit_flags[k],
-                          seed=None if seeds is None else seeds[k])
-        cols = c.columns()
-        for key in ("T_eq_median", "T_eq_p16", "T_eq_p84", "p_warmer", "ratio_median"):
-            out[key][k] = cols[key]
-        out["flag"][k] = COMPARE_CODES[c.flag]
+    idx = np.array([k for k in range(n) if fields[k] is not None and np.all(np.isfinite(T_draws[k]))], int)
+    if idx.size == 0:
+        return out
+    beta = np.asarray(beta_draws, float)[idx]
+    beta = np.where(np.isfinite(beta), beta, float(opacity.beta))  # NaN beta: the opacity's own slope
+    seq = [_seed_sequence(None if seeds is None else seeds[k], k) for k in idx]
+    # one vectorised call for the tile: equal pixel by pixel to compare_draws with the same seeds
+    cols = compare_chunk(T_draws[idx], beta, [fields[k] for k in idx], opacity,
+                         field_uncertainty=field_uncertainty, projected=projected, thresholds=thresholds,
+                         fit_flags=None if fit_flags is None else [_flag_text(fit_flags[k]) for k in idx],
+                         seeds=seq)
+    for key in keys:
+        out[key][idx] = np.asarray(cols[key], float)
+    out["flag"][idx] = [COMPARE_CODES[str(f)] for f in cols["flag"]]
     return out
+
+
+def _seed_sequence(seed, k):
+    if isinstance(seed, np.random.SeedSequence):
+        return seed
+    return np.random.SeedSequence(0 if seed is None else int(seed))
+
+
+def _flag_text(flags):
+    return flags if isinstance(flags, str) else ",".join(flags or ())
