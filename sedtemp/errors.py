@@ -12,6 +12,7 @@ __all__ = [
     "ConvergenceWarning",
     "PriorEdgeWarning",
     "GridWarning",
+    "PopulationWarning",
 ]
 
 
@@ -49,3 +50,7 @@ class PriorEdgeWarning(SedtempWarning):
 
 class GridWarning(SedtempWarning):
     """A grid posterior touches the grid edge or is narrower than a grid cell."""
+
+
+class PopulationWarning(SedtempWarning):
+    """A population inference may mislead: sources with too few effective draws, or a short chain."""
