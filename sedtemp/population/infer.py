@@ -50,7 +50,9 @@ def run_ensemble(log_post, p0, seed, n_steps):
     state = emcee.State(p0, random_state=np.random.RandomState(seed).get_state())
     sampler.run_mcmc(state, n_steps, progress=False)
     chain = sampler.get_chain()
-    tau = emcee.autocorr.integrated_time(chain[n_steps // 3:], tol=0)
+    with np.errstate(invalid="ignore", divide="ignore"):  # a walker-frozen parameter gives NaN
+        tau = emcee.autocorr.integrated_time(chain[n_steps // 3:], tol=0)
+    tau = np.where(np.isfinite(tau), tau, np.inf)
     return chain, sampler.get_log_prob(), sampler.acceptance_fraction, tau
 
 

@@ -31,8 +31,11 @@ RATIO_DRAWS_COLUMN = "draws_ratio"
 
 
 def _values(col):
-    return np.asarray(col.to_value(u.K) if getattr(col, "unit", None) is not None and col.unit != u.one
-                      and col.unit.physical_type == "temperature" else getattr(col, "value", col), float)
+    """Plain floats of a column; a temperature column in K."""
+    unit = getattr(col, "unit", None)
+    if unit is not None and unit.physical_type == "temperature":
+        return u.Quantity(col).to_value(u.K)
+    return np.asarray(getattr(col, "value", col), float)
 
 
 def _draws_of(results, draws):
