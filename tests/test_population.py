@@ -191,17 +191,19 @@ def test_missing_draws_are_padding_and_empty_sources_are_flagged():
 def test_interim_prior_is_divided_out():
     # draws made under a Gaussian interim prior on T (20 +- 2 K) look narrower than the
     # population; declaring the interim prior recovers the true T_sd, ignoring it does not
-    truth, obs, S, draws = simulate(120, 80, 0.0, 4, interim_T=(20.0, 2.0))
+    truth, obs, S, draws = simulate(100, 50, 0.0, 4, interim_T=(20.0, 2.0))
     box = Prior({"T": Gaussian(20.0, 2.0), "beta": Uniform(0.0, 4.0)})
-    right = _quiet(infer_population, draws, interim_prior=box, n_steps=600, seed=2).summary()
-    wrong = _quiet(infer_population, draws, n_steps=600, seed=2).summary()
+    right = _quiet(infer_population, draws, interim_prior=box, n_steps=400, seed=2).summary()
+    wrong = _quiet(infer_population, draws, n_steps=400, seed=2).summary()
     assert right["p2_5"][2] < SD[0] < right["p97_5"][2]
     assert wrong["p97_5"][2] < SD[0]
-    pair = _quiet(infer_population, draws, interim_prior=(box["T"], box["beta"]), n_steps=600, seed=2).summary()
-    assert np.allclose(pair["median"], right["median"])
-    fn = _quiet(infer_population, draws, n_steps=600, seed=2,
-                interim_prior=lambda T, beta: box["T"].logpdf(T)).summary()
-    assert np.allclose(fn["median"][:4], right["median"][:4], rtol=1e-6)
+    # the three ways of giving the same interim prior give the same chain (log-densities
+    # differ by constants only)
+    ref = _quiet(infer_population, draws, interim_prior=box, n_steps=40, seed=2).chain
+    pair = _quiet(infer_population, draws, interim_prior=(box["T"], box["beta"]), n_steps=40, seed=2).chain
+    fn = _quiet(infer_population, draws, n_steps=40, seed=2, interim_prior=lambda T, beta: box["T"].logpdf(T)).chain
+    assert np.array_equal(pair, ref)
+    assert np.allclose(fn, ref, rtol=1e-9)
 
 
 def test_mixture_of_two_gaussians_recovers_the_weight():
@@ -211,7 +213,7 @@ def test_mixture_of_two_gaussians_recovers_the_weight():
     truth = np.where(hot[:, None], rng.normal([32, 1.5], [2, 0.15], (n, 2)), rng.normal([16, 2.0], [1.5, 0.15], (n, 2)))
     obs = truth + rng.normal(0, [1.0, 0.1], (n, 2))
     draws = obs[:, None, :] + rng.normal(0, [1.0, 0.1], (n, m, 2))
-    res = _quiet(infer_population, draws, model="mixture", n_steps=800, seed=0)
+    res = _quiet(infer_population, draws, model="mixture", n_steps=500, seed=0)
     tab = res.summary()
     assert list(tab["parameter"][:6]) == ["T_mean", "beta_mean", "T_sd", "beta_sd", "rho", "fraction_2"]
     row = {r["parameter"]: r for r in tab}
@@ -222,7 +224,7 @@ def test_mixture_of_two_gaussians_recovers_the_weight():
     assert abs(row["T_mean"]["median"] - truth[:, 0].mean()) < 1
 
 
-def _heated_draws(frac, seed, n=200, m=80, s_eq=0.07):
+def _heated_draws(frac, seed, n=200, m=50, s_eq=0.07):
     """y = ln(T_fit/T_eq) draws: equilibrium N(0, s_eq), heated N(0.3, 0.05); Gaussian errors
     0.05-0.12; draws from the exact posterior under a prior uniform in T (p0(y) ~ e^y), which is
     N(y_obs + sigma^2, sigma^2) (exact analytic solution)."""
@@ -236,7 +238,7 @@ def _heated_draws(frac, seed, n=200, m=80, s_eq=0.07):
 
 def test_heated_fraction_recovers_a_known_fraction():
     hot, draws = _heated_draws(0.3, 1)
-    res = _quiet(heated_fraction, draws, equilibrium_scatter=0.07, n_steps=600, seed=0)
+    res = _quiet(heated_fraction, draws, equilibrium_scatter=0.07, n_steps=400, seed=0)
     assert res.interval[0] < hot.mean() < res.interval[1]
     assert res.interval[1] - res.interval[0] < 0.25
     # membership: heated sources are mostly assigned to the heated component
@@ -246,7 +248,7 @@ def test_heated_fraction_recovers_a_known_fraction():
 
 def test_heated_fraction_of_an_equilibrium_catalogue_is_small():
     _, draws = _heated_draws(0.0, 2)
-    res = _quiet(heated_fraction, draws, equilibrium_scatter=0.07, n_steps=600, seed=0)
+    res = _quiet(heated_fraction, draws, equilibrium_scatter=0.07, n_steps=400, seed=0)
     assert res.interval[1] < 0.15
 
 
