@@ -21,9 +21,18 @@ from matplotlib.figure import Figure
 from scipy import stats
 
 from sedtemp.errors import ConvergenceWarning, InputError, PopulationWarning
-from sedtemp.population import (heated_fraction, infer_population, population_figure, population_from_results,
-                                write_population)
-from sedtemp.population._core import ImportanceLikelihood, interim_log_density, prepare_samples
+from sedtemp.population import (
+    heated_fraction,
+    infer_population,
+    population_figure,
+    population_from_results,
+    write_population,
+)
+from sedtemp.population._core import (
+    ImportanceLikelihood,
+    interim_log_density,
+    prepare_samples,
+)
 from sedtemp.population.figure import R68
 from sedtemp.population.models import GaussianPopulation
 from sedtemp.priors import Gaussian, Prior, Uniform
@@ -72,7 +81,7 @@ def fitted():
 
 
 def test_importance_likelihood_matches_exact_gaussian_convolution():
-    truth, obs, S, draws = simulate(30, 4000, 0.0, 5)
+    _truth, obs, S, draws = simulate(30, 4000, 0.0, 5)
     x, valid, _ = prepare_samples(draws, 2)
     log_int, lo, hi = interim_log_density(None, x, valid)
     like = ImportanceLikelihood(GaussianPopulation(lo, hi), x, -log_int)
@@ -88,7 +97,7 @@ def test_importance_likelihood_matches_exact_gaussian_convolution():
 
 @pytest.mark.parametrize("rho", [-0.5, 0.0])
 def test_recovers_population_where_medians_correlation_is_biased(rho):
-    truth, obs, S, draws = simulate(120, 60, rho, 21)
+    _truth, _obs, _S, draws = simulate(120, 60, rho, 21)
     r_med = np.corrcoef(np.median(draws, axis=1).T)[0, 1]
     assert r_med < rho - 0.15  # the noise ellipse drags the medians' correlation down (Kelly et al. 2012)
     res = _quiet(infer_population, draws, n_steps=700, seed=1)
@@ -191,7 +200,7 @@ def test_missing_draws_are_padding_and_empty_sources_are_flagged():
 def test_interim_prior_is_divided_out():
     # draws made under a Gaussian interim prior on T (20 +- 2 K) look narrower than the
     # population; declaring the interim prior recovers the true T_sd, ignoring it does not
-    truth, obs, S, draws = simulate(100, 50, 0.0, 4, interim_T=(20.0, 2.0))
+    _truth, _obs, _S, draws = simulate(100, 50, 0.0, 4, interim_T=(20.0, 2.0))
     box = Prior({"T": Gaussian(20.0, 2.0), "beta": Uniform(0.0, 4.0)})
     right = _quiet(infer_population, draws, interim_prior=box, n_steps=400, seed=2).summary()
     wrong = _quiet(infer_population, draws, n_steps=400, seed=2).summary()
@@ -253,12 +262,12 @@ def test_heated_fraction_of_an_equilibrium_catalogue_is_small():
 
 
 def test_population_from_results_and_files(tmp_path):
-    truth, obs, S, draws = simulate(40, 30, 0.0, 9)
+    _truth, _obs, _S, draws = simulate(40, 30, 0.0, 9)
     draws[2] = np.nan  # a failed fit
     tab = Table({"id": [f"src{i}" for i in range(40)]})
     tab["draws_T"] = draws[..., 0] * u.K
     tab["draws_beta"] = draws[..., 1]
-    hot, ydraws = _heated_draws(0.3, 3, n=40, m=30)
+    _hot, ydraws = _heated_draws(0.3, 3, n=40, m=30)
     res = _quiet(population_from_results, tab, n_steps=80, seed=0, ratio_draws=np.exp(ydraws),
                  equilibrium_scatter=0.07)
     assert res.source_ids[2] == "src2" and res.flags[2] == "no_draws"
@@ -283,7 +292,7 @@ def test_figure_structure(fitted):
     assert isinstance(fig, Figure) and len(fig.axes) == 2
     ax = fig.axes[0]
     assert ax.get_xlabel() == "T (K)" and ax.get_ylabel() == "beta"
-    segs = [c for c in ax.collections if isinstance(c, LineCollection)][0].get_segments()
+    segs = next(c for c in ax.collections if isinstance(c, LineCollection)).get_segments()
     assert len(segs) == 100
     # the population's 68 % line is the ellipse (x - mu)^T C^-1 (x - mu) = R68^2 (independent evaluation)
     med = np.median(res.samples, axis=0)

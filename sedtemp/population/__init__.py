@@ -6,22 +6,22 @@ errors deconvolved, each source is shrunk toward it, and the fraction of
 sources heated beyond radiative equilibrium is inferred with its interval.
 """
 
+from .figure import population_figure
 from .heated import HeatedFractionResult, heated_fraction
 from .infer import infer_population
 from .models import GaussianPopulation, HeatedMixture, MixturePopulation
 from .result import PopulationResult
 from .stage import population_from_results, write_population
-from .figure import population_figure
 
 __all__ = [
-    "infer_population",
+    "GaussianPopulation",
+    "HeatedFractionResult",
+    "HeatedMixture",
+    "MixturePopulation",
     "PopulationResult",
     "heated_fraction",
-    "HeatedFractionResult",
-    "GaussianPopulation",
-    "MixturePopulation",
-    "HeatedMixture",
+    "infer_population",
+    "population_figure",
     "population_from_results",
     "write_population",
-    "population_figure",
 ]

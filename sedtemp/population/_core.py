@@ -12,8 +12,15 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["ImportanceLikelihood", "prepare_samples", "interim_log_density", "importance_weights",
-           "thin_for_weights", "weighted_quantiles", "MAX_CELLS"]
+__all__ = [
+    "MAX_CELLS",
+    "ImportanceLikelihood",
+    "importance_weights",
+    "interim_log_density",
+    "prepare_samples",
+    "thin_for_weights",
+    "weighted_quantiles",
+]
 
 #: Walker x source x draw cells per vectorised evaluation (bounds the memory to ~100 MB).
 MAX_CELLS = 2_000_000

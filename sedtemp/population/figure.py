@@ -10,7 +10,7 @@ import numpy as np
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 
-__all__ = ["population_figure", "ellipse_points", "R68", "R95"]
+__all__ = ["R68", "R95", "ellipse_points", "population_figure"]
 
 #: Radius (in sd) of the 2-D Gaussian region holding 68.3 % / 95.4 %: sqrt(-2 ln(1 - q))
 #: (the chi^2 distribution with 2 degrees of freedom; exact analytic solution).

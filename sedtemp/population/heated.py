@@ -14,7 +14,7 @@ from .infer import DEFAULT_MIN_ESS, DEFAULT_N_STEPS, sample_population, source_f
 from .models import HeatedMixture
 from .result import QUANTILE_COLUMNS, summary_table
 
-__all__ = ["heated_fraction", "HeatedFractionResult", "INTERIM_PRIORS"]
+__all__ = ["INTERIM_PRIORS", "HeatedFractionResult", "heated_fraction"]
 
 #: Interim priors of y = ln(T_fit / T_eq) by name (log-densities up to a constant).
 #: "uniform_T": the fit's prior was uniform in T (the grid default), so p0(ln T) ~ T ~ exp(y)
@@ -144,7 +144,7 @@ def heated_fraction(log_ratio_draws, *, equilibrium_scatter: float, interim_prio
     y = y3[..., 0]
     log_int = _interim_of_y(interim_prior, y, valid)
     model = HeatedMixture(equilibrium_scatter, float(np.max(y[valid])))
-    like, chain, lp, acc, tau, conv, burn = sample_population(
+    like, chain, _lp, _acc, tau, conv, burn = sample_population(
         model, y3[usable], valid[usable], log_int[usable], seed=seed, n_walkers=n_walkers, n_steps=n_steps)
     hyper = chain[burn:].reshape(-1, chain.shape[-1])
     _, ess_used = importance_weights(like, thin_for_weights(hyper))

@@ -25,12 +25,24 @@ import numpy as np
 
 from ..errors import ConvergenceWarning, InputError, PopulationWarning
 from ..seeds import resolve_seed
-from ._core import ImportanceLikelihood, importance_weights, interim_log_density, prepare_samples, thin_for_weights
+from ._core import (
+    ImportanceLikelihood,
+    importance_weights,
+    interim_log_density,
+    prepare_samples,
+    thin_for_weights,
+)
 from .models import population_model
 from .result import FLAG_FEW_DRAWS, FLAG_NO_DRAWS, PopulationResult
 
-__all__ = ["infer_population", "DEFAULT_MIN_ESS", "DEFAULT_N_STEPS", "run_ensemble", "sample_population",
-           "source_flags"]
+__all__ = [
+    "DEFAULT_MIN_ESS",
+    "DEFAULT_N_STEPS",
+    "infer_population",
+    "run_ensemble",
+    "sample_population",
+    "source_flags",
+]
 
 #: Sources whose importance weights have an ESS below this are flagged (rule of thumb:
 #: ten effective draws give the per-source integral a relative error of order 30 %).

@@ -23,8 +23,14 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["GaussianPopulation", "MixturePopulation", "HeatedMixture", "population_model", "MODELS",
-           "RHO_MAX"]
+__all__ = [
+    "MODELS",
+    "RHO_MAX",
+    "GaussianPopulation",
+    "HeatedMixture",
+    "MixturePopulation",
+    "population_model",
+]
 
 #: Largest |rho| the hyper-prior allows: beyond it the Gaussian is numerically singular.
 RHO_MAX = 0.99
@@ -144,7 +150,7 @@ class MixturePopulation:
         return np.logaddexp(a, b)
 
     def initial(self, x, rng, n_walkers):
-        mean, sd, rho, med = _start_moments(x)
+        _mean, sd, _rho, med = _start_moments(x)
         cut = np.median(med[:, 0])
         parts = []
         for sel in (med[:, 0] <= cut, med[:, 0] > cut):

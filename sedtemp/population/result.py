@@ -8,10 +8,16 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
-from ._core import (ImportanceLikelihood, importance_weights, interim_log_density, prepare_samples,
-                    thin_for_weights, weighted_quantiles)
+from ._core import (
+    ImportanceLikelihood,
+    importance_weights,
+    interim_log_density,
+    prepare_samples,
+    thin_for_weights,
+    weighted_quantiles,
+)
 
-__all__ = ["PopulationResult", "QUANTILE_COLUMNS", "FLAG_FEW_DRAWS", "FLAG_NO_DRAWS", "summary_table"]
+__all__ = ["FLAG_FEW_DRAWS", "FLAG_NO_DRAWS", "QUANTILE_COLUMNS", "PopulationResult", "summary_table"]
 
 #: Summary columns and the quantiles (fractions) they hold.
 QUANTILE_COLUMNS = {"median": 0.5, "p2_5": 0.025, "p16": 0.16, "p84": 0.84, "p97_5": 0.975}

@@ -21,7 +21,7 @@ from .heated import heated_fraction
 from .infer import DEFAULT_MIN_ESS, DEFAULT_N_STEPS, infer_population
 from .result import PopulationResult
 
-__all__ = ["population_from_results", "write_population", "POPULATION_FILES", "RATIO_DRAWS_COLUMN"]
+__all__ = ["POPULATION_FILES", "RATIO_DRAWS_COLUMN", "population_from_results", "write_population"]
 
 #: Files written by :func:`write_population`, in order.
 POPULATION_FILES = ("population.ecsv", "population_sources.ecsv", "population_posterior.png",
