@@ -133,7 +133,7 @@ def heated_fraction(log_ratio_draws, *, equilibrium_scatter: float, interim_prio
     Examples
     --------
     >>> rng = np.random.default_rng(0)
-    >>> y = np.r_[np.zeros(80), np.full(20, 0.3)] + rng.normal(0, 0.05, (100, 1))
+    >>> y = (np.r_[np.zeros(80), np.full(20, 0.3)] + rng.normal(0, 0.05, 100))[:, None]
     >>> draws = y + rng.normal(0, 0.05, (100, 200))
     >>> res = heated_fraction(draws, equilibrium_scatter=0.05, interim_prior="uniform_log_ratio",
     ...                       n_steps=400)  # doctest: +SKIP
