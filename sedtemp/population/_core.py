@@ -84,8 +84,8 @@ def prepare_samples(samples, d):
     valid = np.all(np.isfinite(x), axis=2)
     usable = valid.any(axis=1)
     if usable.sum() < 2:
-        raise InputError(f"samples: only {int(usable.sum())} source(s) have finite draws; "
-                         "a population needs at least 2")
+        raise InputError(f"samples: only {int(usable.sum())} source(s) have finite draws of every parameter "
+                         "(a fixed-beta fit has no beta draws); a population needs at least 2")
     fill = np.nanmedian(np.where(valid[..., None], x, np.nan)[usable].reshape(-1, d), axis=0)
     x = np.where(valid[..., None], x, fill)
     return x, valid, usable
