@@ -13,6 +13,7 @@ __all__ = [
     "PriorEdgeWarning",
     "GridWarning",
     "OpacityExtrapolationWarning",
+    "PopulationWarning",
 ]
 
 
@@ -58,3 +59,7 @@ class OpacityExtrapolationWarning(SedtempWarning):
     The fraction of the absorbed power that comes from there is also a result
     column (``opacity_extrapolated_fraction``), so the pipeline can flag it.
     """
+
+
+class PopulationWarning(SedtempWarning):
+    """A population inference may mislead: sources with too few effective draws, or a short chain."""
