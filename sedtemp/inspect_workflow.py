@@ -1,6 +1,6 @@
 """What a workflow will do, before it runs: the dry run behind ``sedtemp check --show``.
 
-Built from the public attributes of :class:`~sedtemp.config.Workflow` only:
+Built from the public attributes of :class:`~sedtemp.pipeline.Workflow` only:
 the resolved workflow as TOML (every default filled in), the band table, the
 resolved model, opacity, priors and field, the range of predicted
 equilibrium temperatures over (a sample of) the catalogue, and a run-time
