@@ -236,7 +236,7 @@ def test_unit_typo_gets_a_suggestion_and_repeats_are_grouped():
     t = _table()
     for c in t.colnames[1:]:
         t[c] = t[c].value  # no units: the workflow states them
-    wf = _workflow(units={c: "mjy" for c in t.colnames[1:]})
+    wf = _workflow(units=dict.fromkeys(t.colnames[1:], "mjy"))
     with pytest.raises(CatalogError, match=r"is not a unit \(did you mean 'mJy' or 'MJy'\?\)") as err:
         map_catalog(t, wf)
     lines = str(err.value).splitlines()[1:]

@@ -1,6 +1,5 @@
 """The sedtemp command, in-process; python -m sedtemp; resume after SIGKILL in a subprocess."""
 
-import json
 import os
 import signal
 import subprocess
@@ -11,8 +10,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-
 from invented import CATALOG_WAVE, invented_catalog
+
 from sedtemp import __version__
 from sedtemp.cli import main
 
@@ -202,7 +201,7 @@ def _moved(finished, tmp_path):
     return moved, hidden, wf
 
 
-@pytest.mark.parametrize(("key", "kinds"), [("S003", ("corner", "sed")), ("S004", ("corner", "sed", "trace"))])
+@pytest.mark.parametrize("key, kinds", [("S003", ("corner", "sed")), ("S004", ("corner", "sed", "trace"))])
 def test_plot_source_from_the_results_file_alone(finished, tmp_path, monkeypatch, capsys, key, kinds):
     results, _ = finished
     res = Table.read(results)
@@ -230,7 +229,7 @@ def test_plot_source_from_the_results_file_alone(finished, tmp_path, monkeypatch
 
 
 def test_plot_source_errors(finished, tmp_path, capsys):
-    results, wf = finished
+    results, _ = finished
     assert main(["plot", str(results), "--source", "S999"]) == 1
     assert ("sedtemp plot: error: source 'S999' is not in results.ecsv (column 'name'); ids look like 'S000'"
             in capsys.readouterr().err)
@@ -413,8 +412,8 @@ def test_fit_one_source_errors_and_plots(finished, tmp_path, capsys):
 def test_check_show_is_a_dry_run(case, capsys):
     import tomllib
 
-    from sedtemp.pipeline import load_workflow, parse_workflow
     from sedtemp.equilibrium import equilibrium_temperature
+    from sedtemp.pipeline import load_workflow, parse_workflow
     from sedtemp.radiation import CMB, ISRF
 
     tmp, wf = case
