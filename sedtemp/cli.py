@@ -284,9 +284,9 @@ def _cmd_demo(args) -> int:
             output["keep_draws"] = False
             _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not written")
         wf = replace(wf, output=output)
-        _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {out}")
-        try:
-            res = _run_workflow(args, wf, tab, map_catalog, out, restart=args.restart)
+        _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {args.output}")
+        try:  # the folder as the user wrote it (the printed paths stay short), the same place as out
+            res = _run_workflow(args, wf, tab, map_catalog, args.output, restart=args.restart)
         except SedtempError as err:  # the batch's advice names `sedtemp run`; here it is the demo
             if "sedtemp run --restart" not in str(err):
                 raise
