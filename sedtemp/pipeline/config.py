@@ -531,6 +531,17 @@ def band_solid_angle(spec: dict, key: str) -> float | None:
     ------
     ConfigError
         Not a quantity, the wrong kind of unit, or not positive.
+
+    Examples
+    --------
+    An 18 arcsec FWHM is a beam of pi FWHM^2 / (4 ln 2) = 367.1 arcsec^2:
+
+    >>> f"{band_solid_angle({'beam': '18 arcsec'}, 'beam'):.4g}"
+    '8.629e-09'
+    >>> f"{band_solid_angle({'solid_angle': 367.1}, 'solid_angle'):.4g}"
+    '8.628e-09'
+    >>> band_solid_angle({"beam": None}, "beam") is None
+    True
     """
     value = spec.get(key)
     if value is None:
