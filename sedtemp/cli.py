@@ -144,12 +144,11 @@ def _workflow(path):
     import astropy.units as u
 
     from .errors import ConfigError
-    from .inspect_workflow import check_field_kinds, with_line
+    from .inspect_workflow import with_line
     from .pipeline import load_workflow
 
     wf = load_workflow(path)
     try:
-        check_field_kinds(wf)  # before the catalogue: a typo in a kind is the workflow's problem
         wf.bandset()
         wf.build_prior()
         wf.opacity()
