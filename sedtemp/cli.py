@@ -32,9 +32,12 @@ and PNG.
 
 ``plot RESULTS`` redraws the catalogue plots from a results file (into its
 folder, or ``--output DIR``). ``plot RESULTS --source ID`` makes the three
-plots of one source in ``DIR/sources/``: it refits the source by MCMC with
-the run's workflow, whose path and sha256 the results file records; it
-refuses if that workflow has changed since the run.
+plots of one source in ``DIR/sources/`` from the results file alone: the
+workflow is rebuilt from the text the results metadata records
+(``workflow_text``, relative paths against ``base_dir``) and the source is
+read again from ``catalog_path``; a source the run fitted by MCMC is refitted
+by MCMC with its seed (corner, SED, trace), a grid source is drawn from its
+grid posterior (corner, SED).
 
 ``check`` validates the workflow and the catalogue and checks that the
 optional packages the workflow needs are installed (h5py for
@@ -55,7 +58,7 @@ import traceback
 from dataclasses import replace
 from pathlib import Path
 
-from . import __version__
+from ._version import __version__
 from .errors import SedtempError
 
 __all__ = ["build_parser", "main"]
@@ -129,7 +132,7 @@ def _say(args, text):
 
 
 def _load(path):
-    from .catalog import map_catalog, read_catalog
+    from .pipeline import map_catalog, read_catalog
 
     wf = _workflow(path)
     tab = read_catalog(wf.path(wf.catalog["path"]), format=wf.catalog["format"])
@@ -140,13 +143,12 @@ def _workflow(path):
     """Load a workflow and build what the schema alone does not check; a problem names its line."""
     import astropy.units as u
 
-    from .config import load_workflow
     from .errors import ConfigError
-    from .inspect_workflow import check_field_kinds, with_line
+    from .inspect_workflow import with_line
+    from .pipeline import load_workflow
 
     wf = load_workflow(path)
     try:
-        check_field_kinds(wf)  # before the catalogue: a typo in a kind is the workflow's problem
         wf.bandset()
         wf.build_prior()
         wf.opacity()
@@ -159,8 +161,8 @@ def _workflow(path):
 def _subset(tab, wf, *, ids=None, limit=None):
     """The rows of ``tab`` with the given ids (catalogue order), then the first ``limit``."""
     from ._units import did_you_mean
-    from .catalog import source_key
     from .errors import CatalogError, InputError
+    from .pipeline import source_key
 
     if ids is not None:
         wanted = [x.strip() for x in str(ids).split(",") if x.strip()]
@@ -190,7 +192,7 @@ def _subset(tab, wf, *, ids=None, limit=None):
 
 
 def _cmd_check(args) -> int:
-    from .batch import check_optional_packages
+    from .pipeline import check_optional_packages
 
     t0 = time.perf_counter()
     wf, tab, map_catalog = _load(args.workflow)
@@ -211,7 +213,7 @@ def _cmd_check(args) -> int:
 
 
 def _run_workflow(args, wf, tab, map_catalog, out, *, restart=False):
-    from .batch import check_optional_packages, run_batch
+    from .pipeline import check_optional_packages, run_batch
 
     check_optional_packages(wf)  # a missing extra fails here, before any fitting
     mapped = map_catalog(tab, wf)
@@ -222,15 +224,11 @@ def _run_workflow(args, wf, tab, map_catalog, out, *, restart=False):
 
 def _summary(args, res, out, wf):
     import json
-    from collections import Counter
 
-    from .config import OUTPUT_FORMATS
+    from .pipeline import OUTPUT_FORMATS, run_summary, summary_lines
 
-    status = Counter(str(s) for s in res["status"])
-    _say(args, f"{len(res)} source(s): " + ", ".join(f"{v} {k}" for k, v in sorted(status.items())))
-    if "flag" in res.colnames:
-        flags = Counter(str(s) for s in res["flag"] if s)
-        _say(args, "flags: " + ", ".join(f"{k}: {v}" for k, v in sorted(flags.items())))
+    for line in summary_lines(run_summary(res), len(res)):
+        _say(args, line)
     name = wf.output["name"]
     _say(args, f"results: {out / (name + OUTPUT_FORMATS[wf.output['format']][1])}")
     report = out / (name + "-report.txt")
@@ -270,8 +268,7 @@ def _h5py_missing() -> bool:
 def _cmd_demo(args) -> int:
     from importlib import resources
 
-    from .catalog import map_catalog, read_catalog
-    from .config import load_workflow
+    from .pipeline import load_workflow, map_catalog, read_catalog
 
     with resources.as_file(resources.files("sedtemp") / "data" / "demo" / "demo.toml") as path:
         wf = load_workflow(path)
@@ -286,9 +283,9 @@ def _cmd_demo(args) -> int:
             output["keep_draws"] = False
             _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not written")
         wf = replace(wf, output=output)
-        _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {out}")
-        try:
-            res = _run_workflow(args, wf, tab, map_catalog, out, restart=args.restart)
+        _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {args.output}")
+        try:  # the folder as the user wrote it (the printed paths stay short), the same place as out
+            res = _run_workflow(args, wf, tab, map_catalog, args.output, restart=args.restart)
         except SedtempError as err:  # the batch's advice names `sedtemp run`; here it is the demo
             if "sedtemp run --restart" not in str(err):
                 raise
@@ -299,18 +296,18 @@ def _cmd_demo(args) -> int:
 
 
 def _truth_score(res, truth, idc):
-    """One line: how often the flag equals the true heating class of the invented scenario."""
+    """One line: how often the heating class equals the true class of the invented scenario."""
     import numpy as np
 
-    if "flag" not in res.colnames:
-        return "no comparison flags (compare stage not available)"
+    if "heating_class" not in res.colnames:
+        return "no heating classes (compare stage not available)"
     t = {str(k): str(c) for k, c in zip(truth[idc], truth["true_class"])}
-    ok = [str(r["flag"]) == t.get(str(r[idc])) for r in res if r["status"] == "ok"]
-    return f"flags equal to the true class for {int(np.sum(ok))} of {len(ok)} fitted sources"
+    ok = [str(r["heating_class"]) == t.get(str(r[idc])) for r in res if r["status"] == "ok"]
+    return f"heating class equal to the true class for {int(np.sum(ok))} of {len(ok)} fitted sources"
 
 
 def _cmd_plot(args) -> int:
-    from .batch import SOURCES_DIR, catalogue_plots
+    from .pipeline import SOURCES_DIR, catalogue_plots
 
     res = _read_results(args.results)
     out = Path(args.output if args.output is not None else args.results.parent)
@@ -348,24 +345,44 @@ def _meta(res, key):
     return None
 
 
-def _run_workflow_of(args, res):
-    """The workflow recorded in a results file, unchanged since the run."""
-    from .config import load_workflow
-    from .errors import ConfigError, InputError
+def _recorded_text(value):
+    """The workflow text of a results file: a list of lines (ECSV), or that list as JSON text (FITS)."""
+    import json
 
-    path, digest = _meta(res, "workflow_path"), _meta(res, "workflow_sha256")
-    if not path or not digest:
-        raise InputError(f"{args.results.name} does not record the path and sha256 of its workflow "
-                         "(results metadata 'workflow_path', 'workflow_sha256'); per-source plots "
-                         "refit the source with that workflow: run it again with this sedtemp version")
-    if not Path(path).exists():
-        raise ConfigError(f"the workflow of {args.results.name}, {path!r}, no longer exists; "
-                          "restore it there to refit its sources")
-    wf = load_workflow(path)
-    if wf.digest != digest:
-        raise ConfigError(f"the workflow {path!r} has changed since {args.results.name} was made "
-                          f"(sha256 {digest[:12]}... recorded, {wf.digest[:12]}... now); restore it, "
-                          "or run it again, before plotting its sources")
+    if isinstance(value, str):
+        try:
+            value = json.loads(value)
+        except ValueError:
+            return value  # plain text (a hand-made file)
+    if isinstance(value, (list, tuple)):
+        return "\n".join(str(x) for x in value) + "\n"
+    return None if value is None else str(value)
+
+
+def _run_workflow_of(args, res):
+    """The workflow of a finished run, rebuilt from the text its results file records."""
+    import tomllib
+
+    from .errors import ConfigError, InputError
+    from .pipeline import parse_workflow
+
+    text, base = _recorded_text(_meta(res, "workflow_text")), _meta(res, "base_dir")
+    if not text or not base:
+        raise InputError(f"{args.results.name} does not record the text of its workflow (results "
+                         "metadata 'workflow_text', 'base_dir'); per-source plots refit the source "
+                         "with that workflow: run it again with this sedtemp version")
+    try:
+        data = tomllib.loads(str(text))
+    except tomllib.TOMLDecodeError as err:
+        raise InputError(f"{args.results.name}: the recorded workflow text is not valid TOML ({err}); "
+                         "the results file is damaged: run the workflow again") from err
+    name = _meta(res, "workflow") or "<recorded workflow>"
+    wf = parse_workflow(data, base_dir=Path(str(base)), source=str(name), text=str(text))
+    digest = _meta(res, "workflow_sha256")
+    if digest and wf.digest != digest:
+        raise ConfigError(f"{args.results.name}: the recorded workflow text does not match its recorded "
+                          f"sha256 ({str(digest)[:12]}... recorded, {wf.digest[:12]}... from the text); "
+                          "the results file is damaged: run the workflow again")
     return wf
 
 
@@ -373,9 +390,8 @@ def _plot_source(args, res, directory):
     """Refit one source of a finished run with its recorded workflow; write its three figures."""
     import numpy as np
 
-    from .catalog import map_catalog, read_catalog
     from .errors import InputError
-    from .pipeline import plot_source, t_eq_band
+    from .pipeline import map_catalog, plot_source, read_catalog, source_key, t_eq_band
 
     idc = _meta(res, "id_column") or res.colnames[0]
     keys = [str(v) for v in res[idc]]
@@ -387,13 +403,18 @@ def _plot_source(args, res, directory):
         raise InputError(f"source {args.source!r} has status {str(row['status'])!r} in {args.results.name} "
                          f"({row['reason']}); there is no posterior to plot")
     wf = _run_workflow_of(args, res)
-    cat = read_catalog(wf.path(wf.catalog["path"]), format=wf.catalog["format"])
-    in_cat = np.flatnonzero(np.array([str(v) for v in cat[wf.catalog["id_column"]]]) == args.source)
+    cat_path = _meta(res, "catalog_path") or wf.path(wf.catalog["path"])
+    if not Path(str(cat_path)).exists():
+        raise InputError(f"the catalogue of {args.results.name}, {str(cat_path)!r}, no longer exists; "
+                         "restore it there to refit its sources")
+    cat = read_catalog(Path(str(cat_path)), format=wf.catalog["format"])
+    in_cat = np.flatnonzero(np.array([source_key(v) for v in cat[wf.catalog["id_column"]]]) == args.source)
     if not in_cat.size:
-        raise InputError(f"source {args.source!r} is no longer in the catalogue {wf.catalog['path']!r} "
-                         "of the workflow")
+        raise InputError(f"source {args.source!r} is no longer in the catalogue {str(cat_path)!r} "
+                         "of the run")
     mapped = map_catalog(cat[in_cat[:1]], wf)  # map only this row: the rest is not needed
-    return plot_source(wf, mapped, 0, directory, T_eq=t_eq_band(row))
+    grid = "method" in res.colnames and str(row["method"]) == "grid"
+    return plot_source(wf, mapped, 0, directory, T_eq=t_eq_band(row), trace=None if grid else True)
 
 
 def _cmd_init(args) -> int:
@@ -437,7 +458,7 @@ def _cmd_fit(args) -> int:
 
     print(source_report(row, wf))
     if args.plots is not None:
-        paths = plot_source(wf, mapped, 0, args.plots, T_eq=t_eq_band(row))
+        paths = plot_source(wf, mapped, 0, args.plots, T_eq=t_eq_band(row), trace=None)
         _say(args, "plots:   " + ", ".join(str(p) for p in paths if p.suffix == ".png"))
     return 0
 

@@ -110,17 +110,17 @@ def source_report(row, wf) -> str:
     if "chi2_map" in row.colnames:
         out.append(f"chi2 = {_value(row, 'chi2_map'):.3g} for {int(_value(row, 'dof'))} dof "
                    f"(reduced {_value(row, 'chi2_reduced'):.3g}); posterior predictive p = {_value(row, 'ppp'):.3g}")
-    flags = str(row["flags"]) if "flags" in row.colnames else ""
+    flags = str(row["fit_flags"]) if "fit_flags" in row.colnames else ""
     out.append(f"fit flags: {flags or 'none'}")
     if "T_eq_median" in row.colnames:
         out.append(f"T_eq (radiative equilibrium) = {_value(row, 'T_eq_median'):.4g} K, 68 % interval "
                    f"[{_value(row, 'T_eq_p16'):.4g}, {_value(row, 'T_eq_p84'):.4g}] K")
-    elif "T_eq" in row.colnames:
-        out.append(f"T_eq (radiative equilibrium) = {_value(row, 'T_eq'):.4g} K at beta = "
+    elif "T_eq_point" in row.colnames:
+        out.append(f"T_eq (radiative equilibrium) = {_value(row, 'T_eq_point'):.4g} K at beta = "
                    f"{_value(row, 'beta_for_T_eq'):.3g}")
     else:
         out.append("T_eq: no [[field.components]] in the workflow, so no prediction")
-    if "flag" in row.colnames:
-        out.append(f"comparison flag: {row['flag']}")
+    if "heating_class" in row.colnames:
+        out.append(f"heating class: {row['heating_class']}")
         out.append(f"verdict: {row['verdict']}")
     return "\n".join(out)

@@ -255,7 +255,7 @@ def workflow_text(catalog=None, *, workflow_path=None, table=None):
     if catalog is None:
         return text, None
     if table is None:
-        from .catalog import read_catalog
+        from .pipeline import read_catalog
 
         table = read_catalog(catalog)
     g = guess_columns(table)

@@ -1,12 +1,12 @@
 """What a workflow will do, before it runs: the dry run behind ``sedtemp check --show``.
 
-Built from the public attributes of :class:`~sedtemp.config.Workflow` only:
+Built from the public attributes of :class:`~sedtemp.pipeline.Workflow` only:
 the resolved workflow as TOML (every default filled in), the band table, the
 resolved model, opacity, priors and field, the range of predicted
 equilibrium temperatures over (a sample of) the catalogue, and a run-time
-estimate from timing a few sources. It also checks what the schema cannot:
-field kinds (a typo is a workflow problem, reported with its line and the
-nearest known kind, not a catalogue problem of the first source).
+estimate from timing a few sources. Field kinds are checked when the
+workflow is read (:func:`sedtemp.pipeline.parse_workflow`: a typo is reported
+with its line and the nearest known kind).
 """
 
 from __future__ import annotations
@@ -17,12 +17,10 @@ import time
 import astropy.units as u
 import numpy as np
 
-from ._units import did_you_mean
 from .errors import ConfigError
 
 __all__ = [
     "band_rows",
-    "check_field_kinds",
     "format_band_table",
     "line_of",
     "physics_lines",
@@ -149,7 +147,7 @@ def _describe(obj):
     return text if len(text) <= 160 else text[:157] + "..."
 
 
-# ------------------------------------------------------------- field kinds
+# ------------------------------------------------------------- workflow lines
 def line_of(wf, pattern) -> int | None:
     """Line number (1-based) of the first line of the workflow file matching ``pattern`` (regex)."""
     if wf.file is None:
@@ -178,28 +176,6 @@ def with_line(wf, err: ConfigError) -> ConfigError:
     new = ConfigError(text)
     new.__cause__ = err
     return new
-
-
-def check_field_kinds(wf) -> None:
-    """Every ``[[field.components]] kind`` is a known field kind.
-
-    Raises
-    ------
-    ConfigError
-        Naming the component, the line of its ``kind``, the nearest known
-        kinds and the entry-point group that adds new ones.
-    """
-    from .fields import FIELD_GROUP, field_kinds
-
-    kinds = field_kinds()
-    for i, comp in enumerate(wf.field["components"]):
-        kind = comp["kind"]
-        if kind not in kinds:
-            n = line_of(wf, rf"^\s*kind\s*=\s*[\"']{re.escape(kind)}[\"']")
-            at = f"{wf.source} line {n}" if n else wf.source
-            raise ConfigError(f"{at}: [[field.components]] {i + 1}: unknown field kind {kind!r}"
-                              f"{did_you_mean(kind, kinds)}; known kinds are {sorted(kinds)} (more can be "
-                              f"registered under the entry-point group '{FIELD_GROUP}')")
 
 
 # ------------------------------------------------------------ T_eq and timing

@@ -39,6 +39,14 @@ WORKFLOW_CASES = [
     ("distance far from the redshift's", {"catalog": {"distance": "400 pc", "redshift": 0.5}},
      r"\[catalog\] 'distance': 0\.0004 Mpc disagrees with redshift 0\.5 \(luminosity distance"),
     ("unknown key", {"fit": {"n_temps": 3}}, r"\[fit\] 'n_temps': unknown key"),
+    ("misspelt key", {"fit": {"n_draw": 300}}, r"\[fit\] 'n_draw': unknown key \(did you mean 'n_draws'\?\)"),
+    ("negative opacity uncertainty", {"compare": {"opacity_uncertainty": -0.3}},
+     r"\[compare\] 'opacity_uncertainty': is a fractional 1-sigma and cannot be negative, got -0\.3"),
+    ("unknown field kind", {"field": {"components": [{"kind": "isfr", "U": 1.0}]}},
+     r"\[\[field\.components\]\] 1: unknown field kind 'isfr' \(did you mean 'isrf'\?\)"),
+    ("beam not an angle", {"bands": {"b250": {"flux": "F250", "error": "E250", "wavelength": "250 um",
+                                              "beam": "18 kg"}}},
+     r"\[bands\.b250\] 'beam': beam: '18 kg' is neither an angle"),
 ]
 
 

@@ -94,7 +94,8 @@ def test_every_problem_reported_at_once():
     msg = str(info.value)
     assert msg.startswith("catalogue 'cat.ecsv' has 6 problem(s):")
     for pattern in [r"band 'b350' flux: column 'F350' is not in the catalogue",
-                    r"band 'b250' error: column 'E250' has unit K, which is not a flux density",
+                    r"band 'b250' error: column 'E250': unit K is not a flux density, a surface brightness or a "
+                    r"per-beam unit; use e.g. Jy, mJy, MJy/sr or Jy/beam",
                     r"band 'b160': error is NaN but the flux is not for 1 source\(s\): 'C2'",
                     r"band 'b160': error is not positive for 1 source\(s\): 'C3'",
                     r"band 'b160': flux is NaN but the error is not .* for 1 source\(s\): 'C4'",
@@ -175,3 +176,79 @@ def test_unreadable_catalogue(tmp_path):
     bad.write_text("not a fits file")
     with pytest.raises(CatalogError, match=r"cannot read catalogue 'bad\.fits'"):
         read_catalog(bad)
+
+
+# ------------------------------------------- surface brightness, per beam, unit typos
+def _band_workflow(b250):
+    """_workflow with extra keys (beam, solid_angle) in [bands.b250]."""
+    cat = {"path": "cat.ecsv", "id_column": "name", "distance": "400 pc"}
+    bands = {b: {"flux": f"F{b[1:]}", "error": f"E{b[1:]}", "wavelength": f"{b[1:]} um"} for b in BANDS}
+    bands["b250"].update(b250)
+    return parse_workflow({"catalog": cat, "bands": bands, "model": {"beta": 1.8}})
+
+
+@pytest.mark.parametrize("beam", ["18 arcsec", 18.0, "367.1 arcsec2"])
+def test_surface_brightness_and_per_beam_columns_give_the_jy_fit_inputs(beam):
+    """MJy/sr x beam area and Jy/beam x one beam equal the Jy column astropy converts the same way."""
+    t = _table()
+    # the beam area of a circular Gaussian, pi FWHM^2 / (4 ln 2) (exact); 367.1 arcsec2 is 18" to 4 digits
+    omega = (np.pi / (4 * np.log(2)) * (18 * u.arcsec) ** 2 if beam != "367.1 arcsec2"
+             else 367.1 * u.arcsec**2)
+    jy = map_catalog(t, _band_workflow({}))
+    sb = t.copy()
+    for c in ("F250", "E250"):  # the same photometry as a surface brightness over the beam (astropy)
+        sb[c] = (t[c].quantity / omega).to(u.MJy / u.sr)
+    got = map_catalog(sb, _band_workflow({"beam": beam}))
+    np.testing.assert_allclose(got.flux, jy.flux, rtol=1e-12)
+    np.testing.assert_allclose(got.err, jy.err, rtol=1e-12)
+    pb = t.copy()  # a point source: its peak in Jy/beam is its flux in Jy (astropy's beam equivalency)
+    for c in ("F250", "E250"):
+        per_beam = t[c].quantity.to_value(u.Jy) * u.Jy / u.beam
+        assert per_beam.to(u.MJy / u.sr, u.beam_angular_area(omega)).value * omega.to_value(u.sr) * 1e6 == \
+            pytest.approx(t[c].quantity.to_value(u.Jy), rel=1e-12)
+        pb[c] = per_beam
+    got = map_catalog(pb, _band_workflow({"beam": beam}))
+    np.testing.assert_allclose(got.flux, jy.flux, rtol=1e-12)
+
+
+def test_surface_brightness_with_a_solid_angle():
+    t = _table()
+    sb = t.copy()
+    for c in ("F250", "E250"):
+        sb[c] = (t[c].quantity / (500 * u.arcsec**2)).to(u.MJy / u.sr)
+    got = map_catalog(sb, _band_workflow({"solid_angle": "500 arcsec2"}))
+    np.testing.assert_allclose(got.flux, map_catalog(t, _band_workflow({})).flux, rtol=1e-12)
+
+
+def test_surface_brightness_without_a_solid_angle_is_refused():
+    t = _table()
+    t["F250"] = t["F250"].value * u.MJy / u.sr
+    with pytest.raises(CatalogError, match=r"band 'b250' flux: column 'F250': unit MJy / sr is a surface "
+                       r"brightness; give the solid angle .* \(add it under \[bands.b250\]\)"):
+        map_catalog(t, _band_workflow({}))
+    t["F250"] = t["F250"].value * u.Jy / u.beam
+    with pytest.raises(CatalogError, match=r"unit Jy / beam is per beam; give the beam .* \(add it under "
+                       r"\[bands.b250\]\)"):
+        map_catalog(t, _band_workflow({}))
+
+
+def test_unit_typo_gets_a_suggestion_and_repeats_are_grouped():
+    t = _table()
+    for c in t.colnames[1:]:
+        t[c] = t[c].value  # no units: the workflow states them
+    wf = _workflow(units=dict.fromkeys(t.colnames[1:], "mjy"))
+    with pytest.raises(CatalogError, match=r"is not a unit \(did you mean 'mJy' or 'MJy'\?\)") as err:
+        map_catalog(t, wf)
+    lines = str(err.value).splitlines()[1:]
+    assert len(lines) == 6 and len(set(lines)) == 6  # one line per column: flux and error of 3 bands
+
+
+def test_bad_beam_in_the_workflow_names_its_line():
+    from sedtemp.errors import ConfigError
+    from sedtemp.pipeline import load_workflow
+
+    with pytest.raises(ConfigError, match=r"\[bands.b250\] 'beam': beam: '18 km' is neither an angle"):
+        _band_workflow({"beam": "18 km"})
+    with pytest.raises(ConfigError, match=r"\[bands.b250\] 'beem': unknown key \(did you mean 'beam'\?\)"):
+        _band_workflow({"beem": "18 arcsec"})
+    del load_workflow

@@ -1,6 +1,5 @@
 """The sedtemp command, in-process; python -m sedtemp; resume after SIGKILL in a subprocess."""
 
-import json
 import os
 import signal
 import subprocess
@@ -11,8 +10,8 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
+from invented import CATALOG_WAVE, invented_catalog
 
-from conftest import CATALOG_WAVE, invented_catalog
 from sedtemp import __version__
 from sedtemp.cli import main
 
@@ -169,21 +168,18 @@ MCMC = "n_walkers = 16\ness_target = 40\nmax_steps = 2000"
 
 @pytest.fixture(scope="module")
 def finished(tmp_path_factory):
-    """A finished run (no per-source plots) of 6 sources in a field: the results file and workflow."""
+    """A finished run (no per-source plots) of 6 sources in a field, S004 by MCMC: results file, workflow."""
     tmp = tmp_path_factory.mktemp("finished")
     _catalog(6).write(tmp / "cat.ecsv")
     wf = tmp / "wf.toml"
-    wf.write_text(_workflow_text(MCMC, extra=FIELD))
+    wf.write_text(_workflow_text(MCMC + '\nmcmc_sources = ["S004"]', extra=FIELD))
     assert main(["run", str(wf), "--quiet"]) == 0
     return tmp / "out" / "results.ecsv", wf
 
 
-def test_plot_source_refits_with_recorded_workflow(finished, tmp_path, monkeypatch, capsys):
+def _recording_corner(monkeypatch):
     from sedtemp import plots
 
-    results, wf = finished
-    res = Table.read(results)
-    assert res.meta["workflow_path"] == str(wf.resolve())
     seen = []
     real = plots.corner_plot
 
@@ -192,24 +188,48 @@ def test_plot_source_refits_with_recorded_workflow(finished, tmp_path, monkeypat
         return real(result, **kw)
 
     monkeypatch.setattr(plots, "corner_plot", recording)
-    assert main(["plot", str(results), "--source", "S003", "--output", str(tmp_path)]) == 0
+    return seen
+
+
+def _moved(finished, tmp_path):
+    """The finished run's results file alone, its workflow file gone: plot --source needs only the results."""
+    results, wf = finished
+    moved = tmp_path / "moved.ecsv"
+    moved.write_bytes(results.read_bytes())
+    hidden = wf.with_name("wf.toml.away")
+    wf.rename(hidden)
+    return moved, hidden, wf
+
+
+@pytest.mark.parametrize("key, kinds", [("S003", ("corner", "sed")), ("S004", ("corner", "sed", "trace"))])
+def test_plot_source_from_the_results_file_alone(finished, tmp_path, monkeypatch, capsys, key, kinds):
+    results, _ = finished
+    res = Table.read(results)
+    seen = _recording_corner(monkeypatch)
+    moved, hidden, wf = _moved(finished, tmp_path)
+    try:
+        assert main(["plot", str(moved), "--source", key, "--output", str(tmp_path)]) == 0
+    finally:
+        hidden.rename(wf)
     names = sorted(p.name for p in (tmp_path / "sources").iterdir())
-    assert names == sorted(f"S003_{k}.{e}" for k in ("corner", "sed", "trace") for e in ("pdf", "png"))
-    assert str(tmp_path / "sources" / "S003_trace.png") in capsys.readouterr().out
+    assert names == sorted(f"{key}_{k}.{e}" for k in kinds for e in ("pdf", "png"))
+    assert str(tmp_path / "sources" / f"{key}_{kinds[-1]}.png") in capsys.readouterr().out
     (result, t_eq), = seen
-    row = res[3]
-    # the predicted T_eq of the row is shaded: the comparison's 68 % interval, else the prediction
-    expect = ([row["T_eq_p16"], row["T_eq_p84"]] if "T_eq_p16" in res.colnames else [row["T_eq"]] * 3)
-    np.testing.assert_array_equal(t_eq, expect)
-    # the refit is an MCMC sample of the posterior the grid row summarises: medians agree within
-    # 4 Monte Carlo errors (sd / sqrt(ESS)) plus the grid's node spacing in T (40 log nodes over 5-60 K)
-    sd = np.std(result.samples["T"])
-    grid_step = row["T_median"] * np.log(60 / 5) / 39
-    assert abs(np.median(result.samples["T"]) - row["T_median"]) < 4 * sd / np.sqrt(result.ess["T"]) + grid_step
+    row = res[int(key[1:])]
+    assert row["method"] == ("mcmc" if key == "S004" else "grid")
+    # the predicted T_eq of the row is shaded: the comparison's 68 % interval
+    np.testing.assert_array_equal(t_eq, [row["T_eq_p16"], row["T_eq_p84"]])
+    t = np.asarray(result.samples["T"])
+    if key == "S004":  # the MCMC refit with the source's seed repeats the run's chain (exact behaviour)
+        assert np.median(t) == pytest.approx(float(row["T_median"]), rel=1e-9)
+    else:  # draws of the run's grid posterior: their median agrees with the grid's quantile within
+        # 4 Monte Carlo errors (sd / sqrt(n)) plus the node spacing in T (40 log nodes over 5-60 K)
+        grid_step = float(row["T_median"]) * np.log(60 / 5) / 39
+        assert abs(np.median(t) - float(row["T_median"])) < 4 * np.std(t) / np.sqrt(t.size) + grid_step
 
 
 def test_plot_source_errors(finished, tmp_path, capsys):
-    results, wf = finished
+    results, _ = finished
     assert main(["plot", str(results), "--source", "S999"]) == 1
     assert ("sedtemp plot: error: source 'S999' is not in results.ecsv (column 'name'); ids look like 'S000'"
             in capsys.readouterr().err)
@@ -225,20 +245,20 @@ def test_plot_source_errors(finished, tmp_path, capsys):
     bare.meta = {}
     bare.write(tmp_path / "bare.ecsv")
     assert main(["plot", str(tmp_path / "bare.ecsv"), "--source", "S001"]) == 1
-    assert ("bare.ecsv does not record the path and sha256 of its workflow (results metadata 'workflow_path', "
-            "'workflow_sha256')" in capsys.readouterr().err)
-    changed = tmp_path / "changed.toml"
-    changed.write_text(wf.read_text().replace("seed = 3", "seed = 4"))
-    res.meta["workflow_path"] = str(changed)
-    res.write(tmp_path / "changed.ecsv")
+    assert ("bare.ecsv does not record the text of its workflow (results metadata 'workflow_text', "
+            "'base_dir')" in capsys.readouterr().err)
+    changed = res.copy()
+    changed.meta["workflow_text"] = [x.replace("seed = 3", "seed = 4") for x in res.meta["workflow_text"]]
+    changed.write(tmp_path / "changed.ecsv")
     assert main(["plot", str(tmp_path / "changed.ecsv"), "--source", "S001"]) == 1
-    err = capsys.readouterr().err
-    assert f"the workflow '{changed}' has changed since changed.ecsv was made (sha256 " in err
-    assert "restore it, or run it again, before plotting its sources" in err
-    res.meta["workflow_path"] = str(tmp_path / "gone.toml")
-    res.write(tmp_path / "gone.ecsv")
-    assert main(["plot", str(tmp_path / "gone.ecsv"), "--source", "S001"]) == 1
-    assert f"the workflow of gone.ecsv, '{tmp_path / 'gone.toml'}', no longer exists" in capsys.readouterr().err
+    assert ("changed.ecsv: the recorded workflow text does not match its recorded sha256 ("
+            in capsys.readouterr().err)
+    gone = res.copy()
+    gone.meta["catalog_path"] = str(tmp_path / "gone.ecsv")
+    gone.write(tmp_path / "nocat.ecsv")
+    assert main(["plot", str(tmp_path / "nocat.ecsv"), "--source", "S001"]) == 1
+    assert (f"the catalogue of nocat.ecsv, '{tmp_path / 'gone.ecsv'}', no longer exists; restore it there"
+            in capsys.readouterr().err)
     assert not (tmp_path / "sources").exists()
 
 
@@ -371,7 +391,7 @@ def test_fit_one_source_prints_summary_prediction_and_verdict(finished, tmp_path
     text = "\n".join(out)
     assert f"chi2 = {row['chi2_map']:.3g} for {int(row['dof'])} dof" in text
     assert f"T_eq (radiative equilibrium) = {row['T_eq_median']:.4g} K" in text
-    assert f"comparison flag: {row['flag']}" in text and f"verdict: {row['verdict']}" in text
+    assert f"heating class: {row['heating_class']}" in text and f"verdict: {row['verdict']}" in text
 
 
 def test_fit_one_source_errors_and_plots(finished, tmp_path, capsys):
@@ -381,16 +401,19 @@ def test_fit_one_source_errors_and_plots(finished, tmp_path, capsys):
     assert main(["fit", str(wf)]) == 2  # --source is required
     assert "the following arguments are required: --source" in capsys.readouterr().err
     assert main(["fit", str(wf), "--source", "S002", "--plots", str(tmp_path / "p"), "--quiet"]) == 0
-    assert sorted(p.name for p in (tmp_path / "p").glob("*.png")) == ["S002_corner.png", "S002_sed.png",
-                                                                      "S002_trace.png"]
+    # a grid source: corner and SED from its grid draws (no chain, so no trace plot)
+    assert sorted(p.name for p in (tmp_path / "p").glob("*.png")) == ["S002_corner.png", "S002_sed.png"]
+    assert main(["fit", str(wf), "--source", "S004", "--plots", str(tmp_path / "q"), "--quiet"]) == 0
+    assert sorted(p.name for p in (tmp_path / "q").glob("*.png")) == ["S004_corner.png", "S004_sed.png",
+                                                                      "S004_trace.png"]
 
 
 # --------------------------------------------------------------- check --show
 def test_check_show_is_a_dry_run(case, capsys):
     import tomllib
 
-    from sedtemp.config import load_workflow, parse_workflow
     from sedtemp.equilibrium import equilibrium_temperature
+    from sedtemp.pipeline import load_workflow, parse_workflow
     from sedtemp.radiation import CMB, ISRF
 
     tmp, wf = case
@@ -430,9 +453,9 @@ def test_builder_errors_name_the_workflow_line(case, capsys):
     _, wf = case
     text = _workflow_text().replace('kind = "uniform"', 'kind = "uniformm"')
     wf.write_text(text)
-    line = text.splitlines().index("[priors.T]") + 1
+    line = text.splitlines().index('kind = "uniformm"') + 1
     assert main(["check", str(wf)]) == 1
-    assert (f"sedtemp check: error: wf.toml line {line}: [priors.T] kind must be one of"
+    assert (f"sedtemp check: error: wf.toml line {line}: [priors.T] 'kind': must be one of"
             in capsys.readouterr().err)
 
 

@@ -7,8 +7,8 @@ import astropy.units as u
 import pytest
 from astropy.table import Table
 
-from sedtemp.catalog import map_catalog, read_catalog
-from sedtemp.config import load_workflow, parse_workflow
+from sedtemp.pipeline import map_catalog, read_catalog
+from sedtemp.pipeline import load_workflow, parse_workflow
 
 DATA = resources.files("sedtemp") / "data"
 

@@ -297,4 +297,4 @@ def test_ctrl_c_prints_one_line(tmp_path):
     os.killpg(proc.pid, signal.SIGINT)  # main process, forkserver and worker, like Ctrl-C
     _, err = proc.communicate(timeout=30)
     assert proc.returncode == 130
-    assert err.strip().splitlines() == ["sedtemp: interrupted; run the same command again to resume"], err
+    assert err.strip().splitlines() == ["sedtemp run: interrupted; run the same command again to resume"], err

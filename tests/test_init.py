@@ -7,10 +7,10 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-from conftest import invented_catalog
+from invented import invented_catalog
 
 from sedtemp.cli import main
-from sedtemp.config import load_workflow
+from sedtemp.pipeline import load_workflow
 from sedtemp.init_workflow import guess_columns, template_text, workflow_text
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -257,9 +257,9 @@ def test_demo_subset_end_to_end(tmp_path, monkeypatch):
 
 def _patch_demo(monkeypatch, **sections):
     """Load the demo workflow with some settings changed (test speed); its file and sha256 stay."""
-    from sedtemp.pipeline import config
+    import sedtemp.pipeline as api  # the CLI imports load_workflow from sedtemp.pipeline when it runs
 
-    real = config.load_workflow
+    real = api.load_workflow
 
     def load(path):
         wf = real(path)
@@ -267,10 +267,7 @@ def _patch_demo(monkeypatch, **sections):
             getattr(wf, name).update(values)
         return wf
 
-    monkeypatch.setattr(config, "load_workflow", load)
-    import sedtemp.config as alias  # the 0.1 import path, which the CLI may still use
-
-    monkeypatch.setattr(alias, "load_workflow", load)
+    monkeypatch.setattr(api, "load_workflow", load)
 
 
 def test_demo_without_h5py(tmp_path, monkeypatch, capsys):

@@ -65,7 +65,7 @@ def catalogue():
         "T_median": t * u.K, "T_p16": (t - 1.5) * u.K, "T_p84": (t + 2.0) * u.K,
         "T_eq_median": t_eq * u.K, "T_eq_p16": (t_eq - 1.0) * u.K, "T_eq_p84": (t_eq + 1.2) * u.K,
         "beta_median": beta, "beta_p16": beta - 0.2, "beta_p84": beta + 0.25,
-        "flag": flags,
+        "heating_class": flags,
     })
 
 
@@ -272,7 +272,7 @@ def test_comparison_points_limits_and_legend(catalogue):
     # each flag's points are (T_eq, T_fit) of exactly its rows
     for flag in plots.FLAG_STYLES:
         pts = _line(ax, f"flag_{flag}")
-        rows = np.asarray(catalogue["flag"]) == flag
+        rows = np.asarray(catalogue["heating_class"]) == flag
         np.testing.assert_array_equal(pts.get_xdata(), np.asarray(catalogue["T_eq_median"])[rows])
         np.testing.assert_array_equal(pts.get_ydata(), np.asarray(catalogue["T_median"])[rows])
     assert ax.get_legend() is None  # the legend is the figure's, below the axes
@@ -298,14 +298,14 @@ def test_comparison_converts_units(catalogue):
     for c in ("T_eq_median", "T_eq_p16", "T_eq_p84"):
         t[c] = t[c].to(u.mK)
     pts = _line(plots.comparison_plot(t).axes[0], "flag_consistent")
-    rows = np.asarray(catalogue["flag"]) == "consistent"
+    rows = np.asarray(catalogue["heating_class"]) == "consistent"
     np.testing.assert_allclose(pts.get_xdata(), np.asarray(catalogue["T_eq_median"])[rows], rtol=1e-12)
 
 
 def test_comparison_errors(catalogue):
     bad = catalogue.copy()
-    bad["flag"][0] = "hot"
-    with pytest.raises(InputError, match=r"unknown flag value\(s\) \['hot'\] in column 'flag'"):
+    bad["heating_class"][0] = "hot"
+    with pytest.raises(InputError, match=r"unknown heating class value\(s\) \['hot'\] in column 'heating_class'"):
         plots.comparison_plot(bad)
     with pytest.raises(InputError, match=r"comparison_plot: the table has no column 'T_eq_p84'"):
         plots.comparison_plot(catalogue[[c for c in catalogue.colnames if c != "T_eq_p84"]])
@@ -327,7 +327,7 @@ def test_population_ellipses_are_68_percent_gaussian_regions(catalogue):
     # and T_beta_corr. Exact geometry: rtol 1e-10.
     q = stats.chi2.ppf(0.68, 2)
     for i, path in enumerate(ell.get_paths()):
-        row = {c: float(t[c][i]) for c in t.colnames if c not in ("id", "flag")}
+        row = {c: float(t[c][i]) for c in t.colnames if c not in ("id", "heating_class")}
         s_t = 0.5 * (row["T_p84"] - row["T_p16"])
         s_b = 0.5 * (row["beta_p84"] - row["beta_p16"])
         r = row["T_beta_corr"]
@@ -487,7 +487,7 @@ def test_colours_survive_greyscale():
 def test_population_without_correlation_column_draws_axis_aligned_ellipses(catalogue):
     # Documented fallback: rho = 0. The half extents are then exactly
     # r sigma_T and r sigma_beta, r = sqrt(chi2.ppf(0.68, 2)) (scipy reference).
-    t = catalogue[[c for c in catalogue.colnames if c != "flag"]]
+    t = catalogue[[c for c in catalogue.colnames if c != "heating_class"]]
     (ell,) = [c for c in plots.population_plot(t).axes[0].collections if c.get_gid() == "ellipses"]
     r = np.sqrt(stats.chi2.ppf(0.68, 2))
     v = ell.get_paths()[0].vertices
@@ -582,7 +582,7 @@ def test_comparison_skips_rows_without_a_flag(catalogue):
     from astropy.table import MaskedColumn
 
     t = catalogue.copy()
-    t["flag"] = MaskedColumn([str(f) for f in t["flag"]], mask=[i == 2 for i in range(len(t))])
+    t["heating_class"] = MaskedColumn([str(f) for f in t["heating_class"]], mask=[i == 2 for i in range(len(t))])
     for c in ("T_median", "T_p16", "T_p84"):
         t[c] = MaskedColumn(np.asarray(t[c], float), mask=[i == 2 for i in range(len(t))])
     ax = plots.comparison_plot(t).axes[0]

@@ -132,7 +132,8 @@ def run_metadata(wf: Workflow, mapped: MappedCatalog) -> dict:
             "command_line": " ".join(sys.argv), "workflow_sha256": wf.digest,
             "results_sha256": digests["workflow"], "catalog_sha256": digests["catalog"],
             "files_sha256": digests["files"], "workflow": wf.source,
-            "workflow_text": wf.text or "", "workflow_path": "" if wf.file is None else str(wf.file),
+            # one string per line: ECSV's YAML header folds a long multi-line string into one line
+            "workflow_text": (wf.text or "").splitlines(), "workflow_path": "" if wf.file is None else str(wf.file),
             "catalog_path": str(wf.path(wf.catalog["path"]).resolve()), "base_dir": str(wf.base_dir.resolve()),
             "seed": wf.run["seed"], "id_column": mapped.id_column, "band_names": list(mapped.band_names)}
 

@@ -25,16 +25,16 @@ import numpy as np
 from astropy.coordinates import SkyCoord
 from astropy.table import MaskedColumn
 
-from ..errors import CatalogError, ConfigError
+from .._units import flux_density_si, group_causes, parse_unit
+from ..errors import CatalogError, ConfigError, InputError
 from ..fields import build_field
-from .config import Workflow, parse_quantity
+from .config import Workflow, band_solid_angle, parse_quantity
 from .tables import read_catalog, write_table
 
 __all__ = ["MappedCatalog", "map_catalog", "read_catalog", "source_key", "write_table"]
 
 # the file side (reading catalogues, writing tables) lives in .tables; re-exported here
 
-_FLUX_SI = u.W / u.m**2 / u.Hz
 #: Field parameters that are dimensionless, so a column without a unit is fine.
 _DIMENSIONLESS = {"U", "A_V", "dilution", "redshift", "scale"}
 #: Problems of one kind listed by source before "... and N more".
@@ -167,8 +167,9 @@ class _Problems:
 
     def raise_if_any(self):
         if self.items:
-            lines = "\n  - ".join(self.items)
-            raise CatalogError(f"catalogue {self.source!r} has {len(self.items)} problem(s):\n  - {lines}")
+            items = group_causes(self.items)  # one line per cause, repeats counted
+            lines = "\n  - ".join(items)
+            raise CatalogError(f"catalogue {self.source!r} has {len(items)} problem(s):\n  - {lines}")
 
 
 def _column_values(tab, name, unit_hint, what, probs, catalog_units):
@@ -188,9 +189,9 @@ def _column_values(tab, name, unit_hint, what, probs, catalog_units):
     stated = unit_hint if unit_hint is not None else catalog_units.get(name)
     if stated is not None:
         try:
-            stated = u.Unit(stated)
-        except ValueError:
-            probs.add(f"{what}: unit {stated!r} given for column {name!r} is not a valid unit")
+            stated = parse_unit(stated, name=f"{what}: column {name!r}")
+        except InputError as err:
+            probs.add(str(err))
             return vals, None
         if unit is not None and unit != stated:
             probs.add(f"{what}: column {name!r} has unit {unit} but the workflow says {stated}; "
@@ -212,15 +213,17 @@ def _flux_columns(tab, wf, probs, catalog_units):
             if vals is None:
                 continue
             if unit is None:
-                if tab[spec[key]].unit is None and spec["unit"] is None:
+                if tab[spec[key]].unit is None and spec["unit"] is None and spec[key] not in catalog_units:
                     probs.add(f"{what}: column {spec[key]!r} has no unit; add unit = \"mJy\" "
                               f"(or Jy) under [bands.{bname}]")
                 continue
             try:
-                target[:, j] = (vals * unit).to_value(_FLUX_SI)
-            except u.UnitConversionError:
-                probs.add(f"{what}: column {spec[key]!r} has unit {unit}, which is not a flux "
-                          "density; use Jy, mJy or W m-2 Hz-1")
+                omega = band_solid_angle(spec, "solid_angle")  # sr
+                target[:, j] = flux_density_si(vals, unit, solid_angle=None if omega is None else omega * u.sr,
+                                               beam=band_solid_angle(spec, "beam"),
+                                               name=f"{what}: column {spec[key]!r}")
+            except InputError as exc:
+                probs.add(f"{exc} (add it under [bands.{bname}])" if "give the" in str(exc) else str(exc))
         if spec["limit"] is not None:
             if spec["limit"] not in tab.colnames:
                 probs.add(f"band {bname!r} limit: column {spec['limit']!r} is not in the catalogue")

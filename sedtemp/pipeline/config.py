@@ -36,7 +36,11 @@ named here.
     ``calibration`` (name of a group in ``[calibration]``); the response:
     exactly one of ``wavelength`` (monochromatic), ``tophat = {center, width}``
     (width = dnu / nu) or ``response`` (a two-column table file);
-    ``detector`` ("energy" | "photon"), ``reference`` ("nu_fnu" | "fnu" | float).
+    ``detector`` ("energy" | "photon"), ``reference`` ("nu_fnu" | "fnu" | float);
+    ``beam`` (Gaussian FWHM, bare arcsec, or the beam area as a solid angle)
+    and ``solid_angle`` (bare arcsec^2): needed for columns in a surface
+    brightness (``MJy/sr``: flux = I x solid_angle, else x beam area) or per
+    beam (``Jy/beam``: x beam area, or per beam scaled to ``solid_angle``).
 ``[calibration]``
     ``GROUP = fraction``: bands naming a group share that fractional,
     fully correlated calibration error.
@@ -110,8 +114,9 @@ from pathlib import Path
 
 import astropy.units as u
 
+from .._units import beam_solid_angle, did_you_mean
 from ..errors import ConfigError, InputError
-from ..fields import FIELD_GROUP  # the entry-point group of field kinds, defined once
+from ..fields import FIELD_GROUP, field_kinds  # the entry-point group of field kinds, defined once
 from ..fit import defaults as FIT_DEFAULTS
 from .checks import MAX_WORKERS, check_far_ir, check_sections
 
@@ -123,6 +128,7 @@ __all__ = [
     "OUTPUT_FORMATS",
     "SOURCE_PLOT_CHOICES",
     "Workflow",
+    "band_solid_angle",
     "load_workflow",
     "lookup_model",
     "parse_quantity",
@@ -176,7 +182,8 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
 _BAND_KEYS = {"flux": (str, _REQ), "error": (str, _REQ), "limit": (str, None),
               "unit": (str, None), "calibration": (str, None), "wavelength": ((str, *_NUM), None),
               "tophat": (dict, None), "response": (str, None), "detector": (str, "energy"),
-              "reference": ((str, *_NUM), "nu_fnu")}
+              "reference": ((str, *_NUM), "nu_fnu"), "beam": ((str, *_NUM), None),
+              "solid_angle": ((str, *_NUM), None)}
 _PRIOR_KEYS = {"kind": (str, _REQ), "low": (_NUM, None), "high": (_NUM, None),
                "mean": (_NUM, None), "sigma": (_NUM, None)}
 _CHOICES = {("run", "executor"): ("process", "dask", "mpi", "serial"),
@@ -215,6 +222,11 @@ class _Where:
                 return n
         return None
 
+    def matching(self, pattern: str) -> int | None:
+        """The first line matching ``pattern`` (1-based), or None."""
+        rx = re.compile(pattern)
+        return next((n for n, raw in enumerate(self.lines, 1) if rx.match(raw)), None)
+
     def error(self, section, key, message) -> ConfigError:
         n = self.line(section, key)
         at = f"{self.source} line {n}" if n else self.source
@@ -228,7 +240,8 @@ def _check_table(data, schema, section, where) -> dict:
         raise where.error(section, None, f"must be a table, got {type(data).__name__}")
     unknown = [k for k in data if k not in schema]
     if unknown:
-        raise where.error(section, unknown[0], f"unknown key; known keys are {sorted(schema)}")
+        raise where.error(section, unknown[0], f"unknown key{did_you_mean(unknown[0], schema)}; "
+                          f"known keys are {sorted(schema)}")
     out = {}
     for key, (types, default) in schema.items():
         if key not in data:
@@ -501,8 +514,59 @@ def _check_bands(data, where):
         if len(given) != 1:
             raise where.error(sec, None, "give exactly one of wavelength, tophat or response "
                               f"(got {given or 'none'})")
+        for key in ("beam", "solid_angle"):
+            if b[key] is not None:
+                try:
+                    band_solid_angle(b, key)
+                except (ConfigError, InputError) as err:
+                    raise where.error(sec, key, str(err)) from err
         out[name] = b
     return out
+
+
+def band_solid_angle(spec: dict, key: str) -> float | None:
+    """The ``beam`` or ``solid_angle`` of a ``[bands.NAME]`` table in sr (None when not given).
+
+    ``beam`` is a Gaussian FWHM (an angle: ``"18 arcsec"``, bare arcsec) or
+    the beam's area (a solid angle: ``"370 arcsec2"``); ``solid_angle`` is
+    the solid angle the photometry covers (bare arcsec^2). Both turn a
+    surface brightness (``MJy/sr``) or a per-beam value (``Jy/beam``) into
+    a flux density (:func:`sedtemp._units.flux_density_si`).
+
+    Raises
+    ------
+    ConfigError
+        Not a quantity, the wrong kind of unit, or not positive.
+
+    Examples
+    --------
+    An 18 arcsec FWHM is a beam of pi FWHM^2 / (4 ln 2) = 367.1 arcsec^2:
+
+    >>> f"{band_solid_angle({'beam': '18 arcsec'}, 'beam'):.4g}"
+    '8.629e-09'
+    >>> f"{band_solid_angle({'solid_angle': 367.1}, 'solid_angle'):.4g}"
+    '8.628e-09'
+    >>> band_solid_angle({"beam": None}, "beam") is None
+    True
+    """
+    value = spec.get(key)
+    if value is None:
+        return None
+    if key == "solid_angle":
+        q = parse_quantity(value, "arcsec2", f"{key}")
+        return beam_solid_angle(area=q)
+    try:
+        q = u.Quantity(value) if isinstance(value, str) else float(value) * u.arcsec
+    except (TypeError, ValueError) as err:
+        raise ConfigError(f"beam: cannot read {value!r} as a quantity (e.g. '18 arcsec' or '370 arcsec2')") from err
+    if isinstance(value, str) and q.unit == u.dimensionless_unscaled:
+        q = q.value * u.arcsec
+    if q.unit.is_equivalent(u.sr):
+        return beam_solid_angle(area=q)
+    if q.unit.is_equivalent(u.rad):
+        return beam_solid_angle(fwhm=q)
+    raise ConfigError(f"beam: {value!r} is neither an angle (a FWHM, e.g. '18 arcsec') nor a solid angle "
+                      "(the beam area, e.g. '370 arcsec2')")
 
 
 def _check_mapping_of(data, section, types, where):
@@ -515,10 +579,18 @@ def _check_mapping_of(data, section, types, where):
 
 
 def _check_components(comps, where):
+    kinds = field_kinds()
     for i, comp in enumerate(comps):
         if not isinstance(comp, dict) or not isinstance(comp.get("kind"), str):
             raise where.error("field.components", None,
                               f"component {i + 1} must be a table with a string 'kind'")
+        kind = comp["kind"]
+        if kind not in kinds:
+            n = where.matching(rf"^\s*kind\s*=\s*[\"']{re.escape(kind)}[\"']")
+            at = f"{where.source} line {n}" if n else where.source
+            raise ConfigError(f"{at}: [[field.components]] {i + 1}: unknown field kind {kind!r}"
+                              f"{did_you_mean(kind, kinds)}; known kinds are {sorted(kinds)} (more can be "
+                              f"registered under the entry-point group '{FIELD_GROUP}')")
 
 
 def _digest(data) -> str:

@@ -11,26 +11,15 @@ from astropy.table import Table
 
 from ..errors import ConfigError
 from .config import SOURCE_PLOT_CHOICES
-from .schema import CLASS_COLUMN, FIT_FLAGS_COLUMN, NONE_TEXT, RENAMES, STATUS_OK
+from .schema import CLASS_COLUMN, DRAW_PREFIX, FIT_FLAGS_COLUMN, NONE_TEXT, STATUS_OK
 from .sources import plot_source, t_eq_band
 
-__all__ = ["SOURCES_DIR", "catalogue_plots", "legacy_names", "select_plot_sources", "source_plots"]
+__all__ = ["SOURCES_DIR", "catalogue_plots", "select_plot_sources", "source_plots"]
 
 log = logging.getLogger(__name__)
 
 #: Sub-folder of the output directory that holds the per-source figures.
 SOURCES_DIR = "sources"
-
-
-def legacy_names(tab: Table) -> Table:
-    """A view of ``tab`` with the pre-0.2 column names (``flag``, ``flags``, ``T_eq``) the plots read."""
-    out = tab.copy(copy_data=False)
-    for old, new in RENAMES.items():
-        if new in out.colnames and old not in out.colnames:
-            out.rename_column(new, old)
-    if "flags" in out.colnames:
-        out["flags"] = [("" if str(v) == NONE_TEXT else str(v)) for v in out["flags"]]
-    return out
 
 
 def catalogue_plots(results: Table, directory) -> tuple[list[Path], list[str]]:
@@ -50,7 +39,7 @@ def catalogue_plots(results: Table, directory) -> tuple[list[Path], list[str]]:
     except ImportError as err:  # matplotlib or corner missing
         return [], [f"plots: not available ({err})"]
     out = Path(directory)
-    base = legacy_names(results[[c for c in results.colnames if not c.startswith("draws_")]])
+    base = results[[c for c in results.colnames if not c.startswith(DRAW_PREFIX)]]
     if "id" not in base.colnames:
         base["id"] = base[base.colnames[0]]
     ok = base[np.asarray(base["status"]) == STATUS_OK] if "status" in base.colnames else base

@@ -28,7 +28,7 @@ _GREY = "#808080"
 #: SED model: one hue (blue) at three lightness steps, so the bands stay ordered in greyscale.
 _SED_COLOURS = {"band95": "#c6dbef", "band68": "#6baed6", "median": "#08306b"}
 
-#: Comparison flag -> (colour, marker, legend text in plain words).
+#: Heating class -> (colour, marker, legend text in plain words).
 FLAG_STYLES = {
     "consistent": (_OKABE_ITO["blue"], "o", "consistent with radiative equilibrium"),
     "extra_heating": (_OKABE_ITO["vermillion"], "^", "warmer than equilibrium: extra heating"),
@@ -152,22 +152,27 @@ def _interval(table, p, what, *, kelvin):
     return med, med - lo, hi - med
 
 
+#: The results column of the comparison's heating class (``flag`` before version 0.2).
+CLASS_COLUMN = "heating_class"
+
+
 def _flags(table, what):
-    if not _has(table, "flag"):
+    if not _has(table, CLASS_COLUMN):
         return None
-    col = table["flag"]
+    col = table[CLASS_COLUMN]
     if hasattr(col, "filled") and getattr(col, "mask", None) is not None:
         col = col.filled("")  # masked: a source with no comparison (skipped, failed)
     flags = np.asarray([str(f) for f in np.atleast_1d(np.asarray(col))])
     flags[np.isin(flags, _NO_FLAG)] = ""  # not drawn
     unknown = sorted(set(flags.tolist()) - set(FLAG_STYLES) - {""})
     if unknown:
-        raise InputError(f"{what}: unknown flag value(s) {unknown} in column 'flag'; "
+        raise InputError(f"{what}: unknown heating class value(s) {unknown} in column "
+                         f"{CLASS_COLUMN!r}; "
                          f"expected one of {list(FLAG_STYLES)}")
     return flags
 
 
-#: Values of the ``flag`` column meaning "no comparison" (a skipped or failed source): not drawn.
+#: Values of the ``heating_class`` column meaning "no comparison" (a skipped or failed source): not drawn.
 _NO_FLAG = ("", "none", "--")
 
 

@@ -17,6 +17,7 @@ from ._style import (
     _GREY,
     _REGION_MASS,
     _SED_COLOURS,
+    CLASS_COLUMN,
     FLAG_STYLES,
     SINGLE_COLUMN_IN,
     _column,
@@ -38,14 +39,14 @@ __all__ = ["comparison_plot", "population_plot"]
 
 def comparison_plot(table: Table | Mapping, *, fig: FigureBase | None = None,
                     save_to: str | Path | None = None) -> FigureBase:
-    """Fitted against equilibrium temperature for a catalogue, coloured by flag.
+    """Fitted against equilibrium temperature for a catalogue, coloured by heating class.
 
     Parameters
     ----------
     table : astropy Table or mapping of columns
         Needs ``T_median``, ``T_p16``, ``T_p84`` (fit) and ``T_eq_median``,
         ``T_eq_p16``, ``T_eq_p84`` (prediction), in K (bare or with a unit);
-        an optional ``flag`` column with values in :data:`FLAG_STYLES`.
+        an optional ``heating_class`` column with values in :data:`FLAG_STYLES`.
     fig : Figure or SubFigure, optional, keyword-only
         An empty figure to draw on; default a square one of single-column width.
     save_to : str or Path, optional, keyword-only
@@ -60,7 +61,7 @@ def comparison_plot(table: Table | Mapping, *, fig: FigureBase | None = None,
     Raises
     ------
     InputError
-        A missing column, quantiles out of order, or an unknown flag.
+        A missing column, quantiles out of order, or an unknown heating class.
     """
     what = "comparison_plot"
     t_fit, fit_lo, fit_hi = _interval(table, "T", what, kelvin=True)
@@ -76,7 +77,7 @@ def comparison_plot(table: Table | Mapping, *, fig: FigureBase | None = None,
         pad = 0.05 * (hi - lo) if hi > lo else 1.0
         lim = (max(lo - pad, 0.0), hi + pad)
         ax.plot(lim, lim, color="k", ls="--", lw=0.8, label="equal temperatures (1:1)", gid="one_to_one")
-        has_flag = _has(table, "flag")
+        has_flag = _has(table, CLASS_COLUMN)
         for flag, (colour, marker, text) in FLAG_STYLES.items():  # a few categories
             s = flags == flag
             if not s.any():
@@ -161,7 +162,7 @@ def population_plot(table: Table | Mapping, *, draws: Mapping | None = None, fig
     table : astropy Table or mapping of columns
         ``T_median``, ``T_p16``, ``T_p84`` (K), ``beta_median``,
         ``beta_p16``, ``beta_p84``; optional ``T_beta_corr`` (posterior
-        correlation coefficient of T and beta), ``flag`` (colours as in
+        correlation coefficient of T and beta), ``heating_class`` (colours as in
         :func:`comparison_plot`) and ``id`` (needed with ``draws``).
     draws : mapping, optional, keyword-only
         Source id -> (T draws in K, beta draws): those sources get a contour
@@ -180,7 +181,7 @@ def population_plot(table: Table | Mapping, *, draws: Mapping | None = None, fig
     ------
     InputError
         Missing columns, quantiles out of order, |T_beta_corr| >= 1, an
-        unknown flag, or ``draws`` for an id that is not in the table.
+        unknown heating class, or ``draws`` for an id that is not in the table.
 
     Notes
     -----
@@ -226,7 +227,7 @@ def population_plot(table: Table | Mapping, *, draws: Mapping | None = None, fig
         for flag in (FLAG_STYLES if flags is not None else [None]):
             s = np.ones(t.size, bool) if flag is None else flags == flag
             if s.any():
-                colour, marker, text = FLAG_STYLES[flag or "consistent"]
+                _, marker, text = FLAG_STYLES[flag or "consistent"]
                 ax.plot(t[s], b[s], ls="none", marker=marker, ms=3, color=colours[s][0], mec="k",
                         mew=0.3, label=text if flag else "posterior median", gid=f"points_{flag}")
         ax.autoscale_view()

@@ -442,7 +442,7 @@ def trace_plot(result: FitResult, *, fig: FigureBase | None = None,
         raise InputError("trace_plot needs an MCMC FitResult with a stored chain "
                          f"(method={getattr(result, 'method', None)!r} has none)")
     chain = np.asarray(chain, float)
-    n_steps, n_walkers, k = chain.shape
+    n_steps, _, k = chain.shape
     burn = int(result.burn)
     acf = _autocorr_function(chain[burn:])
     steps = np.arange(n_steps)
