@@ -112,6 +112,19 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--output", type=Path, default=Path(_DEMO_OUTPUT), help=f"folder (default {_DEMO_OUTPUT})")
     d.add_argument("--sources", type=int, default=None, help="use only the first N sources")
     d.add_argument("--restart", action="store_true", help="discard checkpoints of an earlier demo run")
+    d.add_argument("--maps", action="store_true", help="the map demo instead: synthetic images of an "
+                   "invented cloud, fitted pixel by pixel and compared with their truth")
+    m = sub.add_parser("map", parents=[common], help="fit a workflow's FITS images pixel by pixel")
+    m.add_argument("workflow", type=Path, help="workflow TOML file with a [maps] section")
+    m.add_argument("--output", type=Path, help="output folder (default: [output] directory)")
+    m.add_argument("--restart", action="store_true", help="discard tile checkpoints of an earlier run")
+    po = sub.add_parser("population", parents=[common],
+                        help="infer the (T, beta) population of a finished run from its kept draws")
+    po.add_argument("results", type=Path, help="results file of a finished run (its draws file beside it)")
+    po.add_argument("--model", choices=("gaussian", "mixture"), default="gaussian")
+    po.add_argument("--steps", type=int, default=2000, help="emcee steps (default 2000)")
+    po.add_argument("--seed", type=int, default=None, help="seed (default: the run's)")
+    po.add_argument("--output", type=Path, metavar="DIR", help="folder of the files (default: that of RESULTS)")
     pl = sub.add_parser("plot", parents=[common], help="plots from a results table")
     pl.add_argument("results", type=Path, help="results file of a finished run")
     pl.add_argument("--source", metavar="ID", help="corner, SED and trace plots of this source "
@@ -268,6 +281,9 @@ def _h5py_missing() -> bool:
 def _cmd_demo(args) -> int:
     from importlib import resources
 
+    if args.maps:
+        return _cmd_map_demo(args)
+
     from .pipeline import load_workflow, map_catalog, read_catalog
 
     with resources.as_file(resources.files("sedtemp") / "data" / "demo" / "demo.toml") as path:
@@ -280,8 +296,7 @@ def _cmd_demo(args) -> int:
         out = args.output.resolve()
         output = {**wf.output, "directory": str(out)}
         if output["keep_draws"] and _h5py_missing():  # h5py is the optional extra sedtemp[hdf5]
-            output["keep_draws"] = False
-            _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not written")
+            _say(args, "demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws go to a FITS table")
         wf = replace(wf, output=output)
         _say(args, f"demo: {len(tab)} sources of the invented Varnel cloud -> {args.output}")
         try:  # the folder as the user wrote it (the printed paths stay short), the same place as out
@@ -463,9 +478,72 @@ def _cmd_fit(args) -> int:
     return 0
 
 
+def _map_lines(report) -> list[str]:
+    lines = [f"maps: {report['maps']}"]
+    for key in ("n_pixels", "n_fitted", "n_skipped", "skipped", "compare_flags", "fit_flags"):
+        if key in report:
+            lines.append(f"{key.replace('_', ' ')}: {report[key]}")
+    if "figure" in report:
+        lines.append(f"quick-look figure: {report['figure']}")
+    lines.append(f"time: {report['seconds']} s ({report['tiles_resumed']} tile(s) resumed)")
+    return lines
+
+
+def _cmd_map(args) -> int:
+    from .maps import run_map_workflow
+
+    report = run_map_workflow(args.workflow, output_dir=args.output, restart=args.restart,
+                              progress=not args.quiet)
+    report.pop("hdul", None)
+    for line in _map_lines(report):
+        _say(args, line)
+    return 0
+
+
+def _cmd_map_demo(args) -> int:
+    from .maps import run_map_demo
+
+    out = args.output if args.output != Path(_DEMO_OUTPUT) else Path(_DEMO_OUTPUT + "-maps")
+    _say(args, f"map demo: synthetic images of the invented Tamsin cloud -> {out}")
+    report = run_map_demo(out, progress=not args.quiet)
+    for line in _map_lines(report):
+        _say(args, line)
+    t = report["truth_comparison"]
+    _say(args, "T map against the truth: " + ", ".join(f"{k} {v:.3g}" if isinstance(v, float) else f"{k} {v}"
+                                                     for k, v in t.items()))
+    return 0
+
+
+def _cmd_population(args) -> int:
+    import tomllib
+
+    from .pipeline import parse_workflow
+    from .pipeline.population_stage import population_stage, read_draws
+
+    res = _read_results(args.results)
+    text = _meta(res, "workflow_text")
+    if not text:
+        raise SedtempError(f"{args.results}: no workflow recorded in its metadata; is it a sedtemp results file?")
+    text = _recorded_text(text)
+    wf = parse_workflow(tomllib.loads(text), base_dir=_meta(res, "base_dir") or ".", text=text)
+    population = {**wf.population, "enabled": True, "model": args.model, "n_steps": args.steps}
+    seed = wf.run["seed"] if args.seed is None else args.seed
+    wf = replace(wf, population=population, run={**wf.run, "seed": seed})
+    out = args.output if args.output is not None else args.results.parent
+    info = population_stage(read_draws(res, args.results), wf, out)
+    _say(args, "population (posterior medians): "
+         + ", ".join(f"{k} {v:.3g}" for k, v in info["summary"].items()))
+    if not info["converged"]:
+        _say(args, "caution: the population chain did not converge; raise --steps")
+    for w in info["warnings"]:
+        _say(args, f"caution: {w}")
+    _say(args, "files: " + ", ".join(str(Path(out) / f) for f in info["files"]))
+    return 0
+
+
 _COMMANDS = {"init": _cmd_init, "check": _cmd_check, "run": _cmd_run, "fit": _cmd_fit, "demo": _cmd_demo,
-             "plot": _cmd_plot}
-_RESUMABLE = ("run", "demo")
+             "plot": _cmd_plot, "map": _cmd_map, "population": _cmd_population}
+_RESUMABLE = ("run", "demo", "map")
 
 
 def main(argv=None) -> int:

@@ -1,6 +1,6 @@
 """Fit defaults shared by the Python API and the workflow (one place for each number).
 
-``sedtemp.config`` imports these, so a workflow with no ``[fit]`` options and
+``sedtemp.pipeline.config`` imports these, so a workflow with no ``[fit]`` options and
 a call of :func:`~sedtemp.fit.fit_source` / :func:`~sedtemp.fit.grid_posterior`
 with no options fit the same way.
 """

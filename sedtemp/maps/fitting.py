@@ -224,7 +224,7 @@ def fit_maps(images: Mapping, errors: Mapping, bands, *, model=None, prior=None,
                           grid, omega, run_seed, float(snr_floor), min_bands, int(n_draws), spec, header_text)
                  for y0, x0 in tile_origins(shape, int(tile_size))]
         if executor is None:
-            from ..batch import InlineExecutor
+            from ..pipeline import InlineExecutor
 
             executor = InlineExecutor()
         results, n_resumed = run_tiles(tasks, folder, executor, n_workers=n_workers, progress=progress)

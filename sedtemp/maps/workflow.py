@@ -8,7 +8,7 @@ default the image's BMAJ) and the band keys used for catalogues:
 ``calibration``). ``[maps]`` itself holds the run options (see
 :data:`MAPS_KEYS`). ``[run]``, ``[model]``, ``[priors]``, ``[calibration]``,
 ``[field]`` and ``[compare]`` mean what they mean for catalogues and are
-validated by :mod:`sedtemp.config`; ``[model]`` defaults to an N(H2)
+validated by :mod:`sedtemp.pipeline.config`; ``[model]`` defaults to an N(H2)
 amplitude per steradian here.
 """
 
@@ -24,7 +24,7 @@ import astropy.units as u
 import numpy as np
 
 from .._io import atomic_write_text, atomic_write_with
-from ..config import Workflow, parse_quantity, parse_workflow
+from ..pipeline import Workflow, parse_quantity, parse_workflow
 from ..errors import ConfigError, InputError
 from .field import COMPARE_CODES
 from .fitting import fit_maps
@@ -55,7 +55,7 @@ class MapWorkflow:
         ``[maps]`` options with defaults filled.
     images : dict of str -> dict
         Band name -> ``{"image", "error" or "noise", "beam"}``.
-    wf : sedtemp.config.Workflow
+    wf : sedtemp.pipeline.Workflow
         The shared sections (bands, model, priors, calibration, field, run).
     """
 
@@ -129,7 +129,7 @@ def parse_map_workflow(data: dict, *, base_dir=".", source="<workflow>") -> MapW
     ConfigError
         No ``[maps]`` or no band table, an unknown key or a wrong type, a
         band without ``image`` or without exactly one of ``error`` / ``noise``,
-        and everything :func:`sedtemp.config.parse_workflow` refuses.
+        and everything :func:`sedtemp.pipeline.parse_workflow` refuses.
     """
     if "maps" not in data:
         raise ConfigError(f"{source}: a map workflow needs a [maps] section with [maps.bands.NAME] tables")
@@ -260,7 +260,7 @@ def run_map_workflow(path, *, output_dir=None, restart: bool = False, progress: 
         Invalid workflow; InputError from :func:`fit_maps` is re-raised as
         ConfigError naming the workflow.
     """
-    from ..batch import open_executor
+    from ..pipeline import open_executor
 
     mw = load_map_workflow(path)
     out = Path(output_dir) if output_dir is not None else mw.output_dir

@@ -28,7 +28,7 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table, vstack
 
-from .._io import atomic_path
+from .._io import atomic_path, atomic_write_with
 from .._version import __version__
 from .catalog import MappedCatalog, write_table
 from .checkpoints import OutputLock, RunState, input_digests, unmasked
@@ -45,6 +45,7 @@ from .schema import (
     order,
     spec,
 )
+from .population_stage import population_stage
 from .stages import process_chunk
 
 __all__ = [
@@ -70,27 +71,15 @@ _KINDS = {"f": float, "i": np.int64, "b": bool, "U": str}
 _RECORDED = ("numpy", "scipy", "astropy", "emcee")
 
 
-def _require_h5py():
-    try:
-        import h5py
-    except ImportError as err:
-        raise ImportError("[output] keep_draws = true needs h5py, which is not installed; "
-                          "pip install 'sedtemp[hdf5]', or set keep_draws = false") from err
-    return h5py
-
-
 def check_optional_packages(wf: Workflow) -> None:
     """Fail now, before any fitting, if the workflow needs an optional package that is missing.
 
     Raises
     ------
     ImportError
-        ``[output] keep_draws = true`` without h5py (extra ``sedtemp[hdf5]``),
         ``executor = "dask"`` without Dask distributed (``sedtemp[dask]``) or
         ``executor = "mpi"`` without mpi4py (``sedtemp[mpi]``).
     """
-    if wf.output["keep_draws"]:
-        _require_h5py()
     EXECUTORS[wf.run["executor"]].check()
 
 
@@ -179,11 +168,28 @@ def _finalise(tabs: list[Table], wf: Workflow, mapped: MappedCatalog) -> Table:
     return out
 
 
+def _h5py_or_none():
+    try:
+        import h5py
+    except ImportError:
+        return None
+    return h5py
+
+
 def _write_draws(tab: Table, path: Path) -> Path | None:
+    """Posterior draws in HDF5 (``path``) when h5py is installed, else in a FITS table beside it."""
     names = [c for c in tab.colnames if c.startswith(DRAW_PREFIX)]
     if not names:
         return None
-    h5py = _require_h5py()
+    h5py = _h5py_or_none()
+    if h5py is None:  # the optional extra sedtemp[hdf5] is absent: a FITS binary table keeps them
+        fits_path = path.with_suffix(".fits")
+        draws = Table({"id": [str(v) for v in tab[tab.colnames[0]]],
+                       **{c[len(DRAW_PREFIX):]: np.asarray(tab[c], float) for c in names}})
+        # FITS keywords of at most 8 characters
+        draws.meta.update(SEDTEMPV=__version__, WORKFLOW=tab.meta.get("workflow_sha256", "")[:64])
+        atomic_write_with(fits_path, lambda tmp: draws.write(tmp, format="fits", overwrite=True))
+        return fits_path
     with atomic_path(path) as tmp, h5py.File(tmp, "w") as h5:
         h5.attrs["sedtemp_version"] = __version__
         h5.attrs["workflow_sha256"] = tab.meta.get("workflow_sha256", "")
@@ -294,11 +300,12 @@ def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
             return result
         seconds = time.perf_counter() - t0
         _write_outputs(result, wf, out)
+        population = population_stage(result, wf, out)
         plots = _plots(get_executor, wf, mapped, result, out, progress)
     events = {"damaged": state.damaged, "removed_temporaries": state.removed_temporaries,
               "stale_lock": None if lock is None or lock.stale is None else lock.stale}
     write_report(result, out / f"{wf.output['name']}-report", seconds=seconds, n_resumed=n_resumed,
-                 plots=plots, checkpoints=events)
+                 plots=plots, checkpoints=events, population=population)
     return result
 
 

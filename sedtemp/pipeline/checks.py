@@ -57,6 +57,14 @@ def _check_output(s, where):
     cols = s["output"]["keep_columns"]
     if not all(isinstance(c, str) and c for c in cols):
         _fail(where, "output", "keep_columns", f"must be a list of column names, got {cols!r}")
+    pop = s["population"]
+    if pop["model"] not in ("gaussian", "mixture"):
+        _fail(where, "population", "model", f"must be \"gaussian\" or \"mixture\", got {pop['model']!r}")
+    if pop["enabled"] and s["output"]["n_keep"] < 2:
+        _fail(where, "population", "enabled", "needs posterior draws: set [output] n_keep to 200 or so")
+    if pop["n_walkers"] < 4 or pop["n_steps"] < 10:
+        _fail(where, "population", "n_walkers", f"needs n_walkers >= 4 and n_steps >= 10, got "
+              f"{pop['n_walkers']} and {pop['n_steps']}")
     if s["compare"]["opacity_uncertainty"] < 0:
         _fail(where, "compare", "opacity_uncertainty",
               f"is a fractional 1-sigma and cannot be negative, got {s['compare']['opacity_uncertainty']}")

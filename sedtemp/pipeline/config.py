@@ -93,8 +93,16 @@ named here.
     ``max_source_plots`` (int >= 0, default 20: at most this many sources
     get per-source plots, in catalogue order), ``keep_columns`` (list of
     catalogue columns copied into the results, e.g. positions and names).
+``[population]``
+    ``enabled`` (bool, default false: after the catalogue, infer the
+    population distribution of (T, beta) from the kept draws, needs
+    ``[output] n_keep`` > 0), ``model`` ("gaussian" | "mixture"),
+    ``n_walkers`` (32), ``n_steps`` (2000), ``min_ess`` (10: importance-weight
+    ESS below which a source is flagged), ``equilibrium_scatter`` (optional:
+    the log-scatter of T_fit / T_eq in equilibrium; given, the heated fraction
+    is inferred too). See :mod:`sedtemp.population`.
 
-Keys that do not change results: ``[run] workers``, ``executor``,
+Keys that do not change results (and all of ``[population]``): ``[run] workers``, ``executor``,
 ``chunk_size``, ``scheduler`` and ``[output] directory``, ``name``,
 ``format``, ``plots``, ``source_plots``, ``max_source_plots``
 (:data:`NON_RESULT_KEYS`). A resumed run may change them; any other change
@@ -143,7 +151,11 @@ SOURCE_PLOT_CHOICES = ("none", "flagged", "all")
 NON_RESULT_KEYS = frozenset({("run", "workers"), ("run", "executor"), ("run", "chunk_size"),
                              ("run", "scheduler"), ("output", "directory"), ("output", "name"),
                              ("output", "format"), ("output", "plots"), ("output", "source_plots"),
-                             ("output", "max_source_plots")})
+                             ("output", "max_source_plots"),
+                             # the population stage reads the finished results: no row depends on it
+                             ("population", "enabled"), ("population", "model"), ("population", "n_walkers"),
+                             ("population", "n_steps"), ("population", "min_ess"),
+                             ("population", "equilibrium_scatter")})
 #: Output format keyword -> (astropy writer, file suffix).
 OUTPUT_FORMATS = {
     "ecsv": ("ascii.ecsv", ".ecsv"),
@@ -178,6 +190,8 @@ _SCHEMA: dict[str, dict[str, tuple]] = {
                "format": (str, "ecsv"), "keep_draws": (bool, False), "n_keep": (int, 200),
                "plots": (bool, True), "source_plots": (str, "flagged"), "max_source_plots": (int, 20),
                "keep_columns": (list, [])},
+    "population": {"enabled": (bool, False), "model": (str, "gaussian"), "n_walkers": (int, 32),
+                   "n_steps": (int, 2000), "min_ess": (_NUM, 10.0), "equilibrium_scatter": (_NUM, None)},
 }
 _BAND_KEYS = {"flux": (str, _REQ), "error": (str, _REQ), "limit": (str, None),
               "unit": (str, None), "calibration": (str, None), "wavelength": ((str, *_NUM), None),
@@ -348,6 +362,7 @@ class Workflow:
     field: dict
     compare: dict
     output: dict
+    population: dict = field(default_factory=lambda: {"enabled": False})
     base_dir: Path = Path(".")
     source: str = "<workflow>"
     digest: str = ""
@@ -370,7 +385,8 @@ class Workflow:
         """The checked sections as one plain mapping (current content, after any edits)."""
         return {"run": self.run, "catalog": self.catalog, "bands": self.bands,
                 "calibration": self.calibration, "model": self.model, "priors": self.priors,
-                "fit": self.fit, "field": self.field, "compare": self.compare, "output": self.output}
+                "fit": self.fit, "field": self.field, "compare": self.compare, "output": self.output,
+                "population": self.population}
 
     def results_content(self) -> dict:
         """:meth:`sections` without the keys of :data:`NON_RESULT_KEYS` (they change no result)."""

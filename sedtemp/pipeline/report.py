@@ -195,7 +195,7 @@ def _plot_lines(plots: dict) -> list[str]:
 
 
 def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int, plots: dict | None = None,
-                 checkpoints: dict | None = None) -> dict:
+                 checkpoints: dict | None = None, population: dict | None = None) -> dict:
     """The run report: summary, failures with reasons, timing, plots, checkpoint events.
 
     Parameters
@@ -210,6 +210,8 @@ def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int, plot
         Sources read back from checkpoints.
     plots : dict, optional, keyword-only
         As the batch runner collects it.
+    population : dict, optional, keyword-only
+        What the population stage returned (files, posterior medians).
     checkpoints : dict, optional, keyword-only
         ``damaged`` (parts removed and refitted), ``stale_lock``, ``removed_temporaries``.
 
@@ -240,6 +242,13 @@ def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int, plot
     if plots:
         rep["plots"] = plots
         lines.extend(_plot_lines(plots))
+    if population:
+        rep["population"] = population
+        med = ", ".join(f"{k} {v:.3g}" for k, v in population["summary"].items())
+        lines.append(f"population (posterior medians): {med}"
+                     + ("" if population["converged"] else " [chain not converged: see population.ecsv]"))
+        lines.append("population files: " + ", ".join(population["files"]))
+        lines.extend(f"population caution: {w}" for w in population.get("warnings", []))
     for title, items in (("failed", failed), ("skipped", skipped)):
         if items:
             lines.append(f"{title}:")
