@@ -31,14 +31,6 @@ autodoc_typehints = "none"  # numpydoc's Parameters sections carry the types and
 # standard library's Executor.submit, whose text is not reST).
 autodoc_inherit_docstrings = False
 
-# The one warning the current docstrings give, answered here rather than suppressed:
-# sedtemp.plots.population_plot writes the absolute value |T_beta_corr|, which reST
-# reads as a substitution reference. This definition renders it as written. Delete it
-# once that docstring writes ``|T_beta_corr|`` (a literal) instead.
-rst_prolog = r"""
-.. |T_beta_corr| replace:: \|T_beta_corr\|
-"""
-
 # numpydoc: no per-member stub pages (autodoc documents the members in place).
 numpydoc_show_class_members = False
 numpydoc_class_members_toctree = False

@@ -7,6 +7,9 @@ and compare the two.
 
 from ._version import __version__
 from .bands import Band, BandSet
+from .compare import Comparison, compare_draws, compare_table
+from .compare import compare as compare_fit
+from .equilibrium import equilibrium_temperature, implied_U
 from .errors import (
     CatalogError,
     ConfigError,
@@ -17,17 +20,12 @@ from .errors import (
 )
 from .fit import FitResult, fit_source, grid_posterior
 from .likelihood import Calibration
-from .models import ModifiedBlackbody, ThickModifiedBlackbody, TwoTemperatureModel
-from .compare import Comparison, compare_draws, compare_table
-from .compare import compare as compare_fit
-from .equilibrium import equilibrium_temperature, implied_U
+from .models import ModifiedBlackbody, ThickModifiedBlackbody, TwoTemperatureModel, get_model
 from .opacity import PowerLawOpacity, SaturatedPowerLawOpacity, TabulatedOpacity
-from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
 from .planck import planck_nu
 from .priors import Gaussian, LogUniform, LogUniformAmplitude, Prior, Uniform, UniformAmplitude
+from .radiation import CMB, ISRF, Blackbody, Star, Tabulated
 from .simulate import simulate_photometry
-from .models import get_model
-
 
 __all__ = [
     "__version__",

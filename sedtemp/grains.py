@@ -260,8 +260,7 @@ def _cumulative_from_top(field, opacity, b_uniq, nu, w):
     tot = dp.sum(axis=1, keepdims=True)
     if not np.all(tot > 0):
         raise InputError(f"stochastic_heating_check: the field {field!r} is not absorbed at all")
-    above = np.cumsum(dp[:, ::-1], axis=1)[:, ::-1] / tot
-    return above
+    return np.cumsum(dp[:, ::-1], axis=1)[:, ::-1] / tot
 
 
 def stochastic_heating_check(field, opacity, grain, *, scale=None, beta=None, nu_grid=None):

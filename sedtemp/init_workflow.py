@@ -190,7 +190,7 @@ def _band_notes(g, b, fu, eu):
                           f"wavelength, tophat or response under [bands.{b.name}]")
 
 
-def _id_notes(g, tab):
+def _id_notes(g, tab):  # noqa: ARG001 - kept for a uniform call signature
     if g.id_column is None:
         g.problems.append("no id column found; set [catalog] id_column")
     else:

@@ -75,13 +75,13 @@ def resolved_toml(wf) -> str:
         if sec == "catalog":
             out.append("")
             for name, spec in wf.bands.items():
-                out += _table(f"bands.{name}", spec) + [""]
+                out += [*_table(f"bands.{name}", spec), ""]
             if wf.calibration:
                 out += _table("calibration", wf.calibration)
         if sec == "model":
             out.append("")
             for name, spec in wf.priors.items():
-                out += _table(f"priors.{name}", spec) + [""]
+                out += [*_table(f"priors.{name}", spec), ""]
         if sec == "field":
             for comp in data["components"]:
                 out += ["", "[[field.components]]"] + [f"{_key(k)} = {_toml_value(v)}" for k, v in comp.items()]

@@ -176,7 +176,7 @@ class SEDModel:
     """
 
     param_names: tuple = ()
-    param_units: dict = {}
+    param_units: dict = {}  # noqa: RUF012 - a read-only table of the class
     amplitude_name: str | None = None
     redshift: float = 0.0
 

@@ -79,10 +79,11 @@ def test_reference_spectrum_has_unit_color_correction(detector, reference, alpha
     # denominator use the same quadrature, so only float rounding remains (1e-13).
     band = _bump_band(detector=detector, reference=reference, reference_wavelength=240 * u.um)
     bs = BandSet([band, Band.tophat("th100", 100 * u.um, 0.4, detector=detector, reference=reference)])
-    spec = lambda nu: 3.0 * (nu / bs.nu_ref_hz[:, None]) ** alpha
+    def spec(nu):
+        return 3.0 * (nu / bs.nu_ref_hz[:, None]) ** alpha
     k_band = band.color_correction(lambda nu: 3.0 * (nu / band.nu_ref_hz) ** alpha)
     np.testing.assert_allclose(k_band, 1.0, rtol=1e-13)
-    for i, b in enumerate(bs):
+    for i, _b in enumerate(bs):
         k = bs.color_correction(lambda nu, i=i: spec(nu)[i])[i]
         np.testing.assert_allclose(k, 1.0, rtol=1e-13)
 
@@ -137,8 +138,10 @@ def test_broad_band_flux_matches_scipy_quad(detector, p, reference, alpha, t_k, 
     flux = bs.band_fluxes(spec(bs.nu_grid_hz))[0]
 
     nu_lo, nu_hi, nu_ref = C_LIGHT / (LAM_HI * 1e-6), C_LIGHT / (LAM_LO * 1e-6), band.nu_ref_hz
-    f_num = lambda nu: spec(np.atleast_1d(nu))[0] * _bump_nu(nu) * nu**p
-    f_den = lambda nu: (nu / nu_ref) ** alpha * _bump_nu(nu) * nu**p
+    def f_num(nu):
+        return spec(np.atleast_1d(nu))[0] * _bump_nu(nu) * nu**p
+    def f_den(nu):
+        return (nu / nu_ref) ** alpha * _bump_nu(nu) * nu**p
     kw = dict(epsabs=0.0, epsrel=1e-12, limit=200)
     num, den = quad(f_num, nu_lo, nu_hi, **kw)[0], quad(f_den, nu_lo, nu_hi, **kw)[0]
     ref = num / den

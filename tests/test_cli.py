@@ -83,7 +83,7 @@ def test_check_reports_catalogue_problems_on_one_line(case, capsys):
 
 
 def test_config_error_and_debug_traceback(case, capsys):
-    tmp, wf = case
+    _tmp, wf = case
     wf.write_text(wf.read_text().replace("[fit]", "[fit]\nmethdo = 'grid'"))
     assert main(["check", str(wf)]) == 1
     err = capsys.readouterr().err
@@ -149,7 +149,7 @@ def test_resume_after_sigkill(tmp_path):
     assert f"({2 * n_done} resumed from checkpoints)" in report
     # uninterrupted reference run of the same command in a fresh process (same environment:
     # BLAS thread settings of this test process may differ after other tests), another folder
-    ref_run = subprocess.run(cmd + ["--output", str(tmp_path / "ref")], capture_output=True, text=True, timeout=300)
+    ref_run = subprocess.run([*cmd, "--output", str(tmp_path / "ref")], capture_output=True, text=True, timeout=300)
     assert ref_run.returncode == 0, ref_run.stderr
     ref = Table.read(tmp_path / "ref" / "results.ecsv")
     assert ref.colnames == resumed.colnames
@@ -320,7 +320,7 @@ def test_population_needs_kept_draws(case, capsys):
 
 # ------------------------------------------------ global options, help, Ctrl-C
 def test_global_options_before_or_after_the_subcommand(case, capsys):
-    tmp, wf = case
+    _tmp, wf = case
     for argv in (["--quiet", "check", str(wf)], ["check", str(wf), "--quiet"], ["check", "--quiet", str(wf)]):
         assert main(argv) == 0, argv
         assert capsys.readouterr().out == "", argv

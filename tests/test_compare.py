@@ -379,9 +379,10 @@ def _demo_fields(n, rng):
     U = np.exp(rng.uniform(-1, 2, n))
     d = rng.uniform(0.5, 3.0, n)
     av = np.where(rng.uniform(size=n) < 0.5, 0.0, rng.uniform(0.5, 8.0, n))
-    comps = lambda i: [{"kind": "isrf", "U": U[i]},
-                       {"kind": "star", "teff": 3.3e4 * u.K, "luminosity": 1.2e5 * u.L_sun, "distance": d[i] * u.pc},
-                       {"kind": "cmb"}]
+    def comps(i):
+        return [{"kind": "isrf", "U": U[i]},
+                           {"kind": "star", "teff": 3.3e4 * u.K, "luminosity": 1.2e5 * u.L_sun, "distance": d[i] * u.pc},
+                           {"kind": "cmb"}]
     return [build_field(comps(i), A_V=av[i]) for i in range(n)]
 
 

@@ -7,8 +7,7 @@ import astropy.units as u
 import pytest
 from astropy.table import Table
 
-from sedtemp.pipeline import map_catalog, read_catalog
-from sedtemp.pipeline import load_workflow, parse_workflow
+from sedtemp.pipeline import load_workflow, map_catalog, parse_workflow, read_catalog
 
 DATA = resources.files("sedtemp") / "data"
 

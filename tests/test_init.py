@@ -10,8 +10,8 @@ from astropy.table import Table
 from invented import invented_catalog
 
 from sedtemp.cli import main
-from sedtemp.pipeline import load_workflow
 from sedtemp.init_workflow import guess_columns, template_text, workflow_text
+from sedtemp.pipeline import load_workflow
 
 ROOT = Path(__file__).resolve().parents[1]
 

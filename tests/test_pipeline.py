@@ -206,7 +206,7 @@ def test_star_separation_from_sky_positions():
         wf = load_workflow(path)
         m = map_catalog(read_catalog(wf.path(wf.catalog["path"])), wf)
         truth = read_catalog(wf.path("demo_truth.ecsv"))
-    star = [c for c in m.field_params if c["kind"] == "star"][0]
+    star = next(c for c in m.field_params if c["kind"] == "star")
     np.testing.assert_allclose(star["distance"].to_value(u.pc), truth["separation"].quantity.to_value(u.pc),
                                rtol=1e-9)
 

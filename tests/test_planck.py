@@ -5,6 +5,7 @@ import numpy as np
 import pytest
 from astropy.modeling.physical_models import BlackBody
 
+from sedtemp.errors import InputError
 from sedtemp.planck import (
     SIGMA_SB,
     WIEN_X_NU,
@@ -15,7 +16,6 @@ from sedtemp.planck import (
     powerlaw_planck_integral,
     wien_peak_x,
 )
-from sedtemp.errors import InputError
 
 
 def test_planck_matches_astropy_blackbody():

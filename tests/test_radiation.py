@@ -70,11 +70,11 @@ def test_isrf_G0_against_draine():
     # Draine (2011, Physics of the ISM, sec. 12.5; from memory): MMP83 has G0 = 1.14.
     # 2 %: the flux form (1.6e-3 erg cm^-2 s^-1) and the energy-density form
     # (5.29e-14 erg cm^-3) of the Habing unit differ by 1 %.
-    assert ISRF().G0 == pytest.approx(1.14, rel=0.02)
+    assert pytest.approx(1.14, rel=0.02) == ISRF().G0
     # numerical 6-13.6 eV integral agrees with the closed form (trapezoid, 4001 nodes)
     assert ISRF(2.0).habing_G0() == pytest.approx(ISRF(2.0).G0, rel=1e-4)
     assert G0_to_U(U_to_G0(np.array([0.5, 7.0]))) == pytest.approx([0.5, 7.0], rel=1e-14)
-    assert ISRF.from_G0(10.0).G0 == pytest.approx(10.0, rel=1e-14)
+    assert pytest.approx(10.0, rel=1e-14) == ISRF.from_G0(10.0).G0
 
 
 def test_blackbody_matches_astropy_and_stefan_boltzmann():

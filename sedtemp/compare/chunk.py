@@ -37,8 +37,7 @@ _ISRF1 = ISRF(1.0)
 def column_names() -> list[str]:
     """Names of the comparison columns, in order (:meth:`Comparison.columns` keys)."""
     names = [f"{n}_{k}" for n in DRAWN for k in QUANTILES]
-    return names + ["p_warmer", "stochastic_fraction", "T_eq_is_upper_bound",
-                    "opacity_extrapolated_fraction", "flag", "verdict"]
+    return [*names, "p_warmer", "stochastic_fraction", "T_eq_is_upper_bound", "opacity_extrapolated_fraction", "flag", "verdict"]
 
 
 def evaluate(T, b, fields, opacity, fac, bounded, q_op):
@@ -87,7 +86,7 @@ def columns_from(T, mass, ev, untrusted, bounded_any, th, stochastic_fraction=No
         q = np.quantile(x, probs, axis=1) if x is not None else np.full((len(probs), n), np.nan)
         cols.update({f"{name}_{k}": q[j] for j, k in enumerate(QUANTILES)})
     sf = np.full(n, np.nan) if stochastic_fraction is None else np.asarray(stochastic_fraction, float)
-    cols["p_warmer"] = np.mean(T > t_eq, axis=1)
+    cols["p_warmer"] = np.mean(t_eq < T, axis=1)
     cols["stochastic_fraction"] = sf
     cols["T_eq_is_upper_bound"] = np.asarray(bounded_any, bool)
     cols["opacity_extrapolated_fraction"] = np.median(ev["extrapolated"], axis=1)

@@ -51,8 +51,7 @@ def classify(ratio, ratio_floor, stochastic_fraction, untrusted, th: Thresholds)
     stoch = np.isfinite(sf) & (sf >= th.p_stochastic)
     conds = [stoch, np.asarray(untrusted, bool), heated, shielded, wide]
     choices = ["non_equilibrium", "unconstrained", "extra_heating", "shielded", "unconstrained"]
-    out = np.select(conds, choices, default="consistent")
-    return out
+    return np.select(conds, choices, default="consistent")
 
 
 def _pfmt(p, n):

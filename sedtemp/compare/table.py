@@ -55,7 +55,8 @@ def _draws_of_row(draws, table, i, key):
     keep = np.isfinite(np.asarray(u.Quantity(T).value if isinstance(T, u.Quantity) else T, float))
     if not keep.any():
         return "no finite posterior draws of T"
-    pick = (lambda v: None if v is None else (v if np.ndim(v) == 0 else v[keep]))
+    def pick(v):
+        return (None if v is None else (v if np.ndim(v) == 0 else v[keep]))
     beta = pick(d.get("beta"))
     if beta is not None and np.ndim(beta) and not np.all(np.isfinite(beta)):
         beta = None  # a fixed-beta fit stores NaN draws of beta
@@ -169,10 +170,7 @@ def compare_table(table: Table, field, opacity, *, draws=None, id_column="id", f
 
 def _with_columns(table, rows, reasons):
     out = Table(table, copy=True)
-    if not rows:
-        names = column_names()
-    else:
-        names = list(next(iter(rows.values())))
+    names = column_names() if not rows else list(next(iter(rows.values())))
     for name in names:
         vals = [rows[i][name] if i in rows else None for i in range(len(table))]
         if name in ("flag", "verdict"):

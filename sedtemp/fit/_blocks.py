@@ -303,7 +303,7 @@ def ppp(grid, nodes, flux, err, limit_only, node, lamp, rng):
     det = ~limit_only & np.isfinite(err)
     sig = np.where(det, err, 0.0)[:, None, :]
     k = len(grid._d2)
-    z = rng.standard_normal(model.shape[:2] + (model.shape[2] + k,))
+    z = rng.standard_normal((*model.shape[:2], model.shape[2] + k))
     noise = z[..., : model.shape[2]] * sig
     for j, (m, d2) in enumerate(zip(grid._masks, grid._d2)):
         noise = noise + model * m * (np.sqrt(d2) * z[..., model.shape[2] + j])[..., None]

@@ -240,7 +240,7 @@ class LogUniformLinearAmplitude(UniformLinearAmplitude):
         grid = np.exp(lu)
         lh = -0.5 * ((grid - mu[..., None]) / s[..., None]) ** 2  # density per unit ln A
         dens = np.exp(lh - lh.max(axis=-1, keepdims=True))
-        cdf = np.concatenate([np.zeros(mu.shape + (1,)),
+        cdf = np.concatenate([np.zeros((*mu.shape, 1)),
                               np.cumsum(0.5 * (dens[..., 1:] + dens[..., :-1]) * np.diff(lu, axis=-1), axis=-1)],
                              axis=-1)
         cdf /= cdf[..., -1:]

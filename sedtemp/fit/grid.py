@@ -249,7 +249,7 @@ class GridPosterior:
             names += [f"beta_{k}" for k in QUANTILES] + ["T_beta_corr"]
         names += [f"{self.amp_name}_{k}" for k in QUANTILES] + ["T_map"]
         names += (["beta_map"] if self.has_beta else []) + [f"{self.amp_name}_map"]
-        return names + ["chi2_map", "n_bands_used", "dof", "chi2_reduced", "ppp"]
+        return [*names, "chi2_map", "n_bands_used", "dof", "chi2_reduced", "ppp"]
 
     @property
     def shape(self):

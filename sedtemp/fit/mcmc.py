@@ -165,7 +165,7 @@ class MarginalLogPosterior:
         return out
 
 
-def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_walkers, rng, grid=None,
+def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_walkers, rng, grid=None,  # noqa: ARG001 - kept for a uniform call signature
                      columns=None):
     """Walkers drawn from the exact grid posterior (linear-amplitude models).
 
@@ -385,13 +385,13 @@ def _full_chain(sampler, post, marginal, rng):
         return chain, lnp
     blobs = np.asarray(sampler.get_blobs(), float)  # (steps, walkers, 2)
     mu, sd = blobs[..., 0], blobs[..., 1]
-    amp = post.amplitude.draw(mu, sd, rng.uniform(size=mu.shape + (post.amplitude.n_uniform,)))
+    amp = post.amplitude.draw(mu, sd, rng.uniform(size=(*mu.shape, post.amplitude.n_uniform)))
     full = post.full_theta(chain.reshape(-1, chain.shape[2]), np.log10(amp).ravel())
-    return full.reshape(chain.shape[:2] + (len(post.names),)), lnp
+    return full.reshape((*chain.shape[:2], len(post.names))), lnp
 
 
 def _make_result(chain, lnp_chain, sampler, burn, converged, post, model, bands, prior, phot, like, rng, seed,
-                 ess_target, key_idx):
+                 ess_target, key_idx):  # noqa: ARG001 - kept for a uniform call signature
     names = tuple(model.param_names)
     nw = chain.shape[1]
     kept = chain[burn:]

@@ -48,7 +48,7 @@ def weighted_quantiles(x, w, probs):
     ws = np.take_along_axis(w, order, axis=-1)
     c = np.cumsum(ws, axis=-1)
     c = (c - 0.5 * ws) / c[..., -1:]
-    out = np.empty(x.shape[:-1] + (len(probs),))
+    out = np.empty((*x.shape[:-1], len(probs)))
     for k, p in enumerate(probs):  # a handful of probabilities
         idx = np.clip(np.sum(c < p, axis=-1), 1, x.shape[-1] - 1)
         c0 = np.take_along_axis(c, idx[..., None] - 1, -1)[..., 0]

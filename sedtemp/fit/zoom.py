@@ -56,7 +56,7 @@ def _bounds(grid):
     return np.array(lo), np.array(hi)
 
 
-def _data(grid, flux, err, limit_only):
+def _data(grid, flux, err, limit_only):  # noqa: ARG001 - kept for a uniform call signature
     det = ~limit_only & np.isfinite(err)
     iv = np.where(det, 1.0 / np.where(np.isfinite(err), err, 1.0) ** 2, 0.0)
     return np.where(det, flux, 0.0), iv
@@ -167,10 +167,7 @@ def window_nodes(grid, centre, half, n=_ZOOM_NODES):
     b = np.maximum(b, np.minimum(a + 1e-9 * np.maximum(1.0, np.abs(a)), hi))
     a = np.minimum(a, b - 1e-12)
     lt = a[:, :1] + (b[:, :1] - a[:, :1]) * t
-    if grid.has_beta:
-        bn = a[:, 1:2] + (b[:, 1:2] - a[:, 1:2]) * t
-    else:
-        bn = np.full((k, 1), np.nan)
+    bn = a[:, 1:2] + (b[:, 1:2] - a[:, 1:2]) * t if grid.has_beta else np.full((k, 1), np.nan)
     lte = _edges(lt)
     be = _edges(bn) if grid.has_beta else np.full((k, 2), np.nan)
     LT = np.repeat(lt, bn.shape[1], axis=1)

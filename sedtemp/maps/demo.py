@@ -144,7 +144,7 @@ def make_map_demo(*, seed: int = 0, scale: float = 1.0, smooth: bool = False, no
     mjy = float((1 * u.MJy / u.sr).to_value(u.W / u.m**2 / u.Hz / u.sr))
     out_wcs = None
     for name, (lam, fwhm, pix, sig) in DEMO_BANDS.items():
-        pix = pix * scale
+        pix = pix * scale  # noqa: PLW2901 - the loop value is normalised in place
         n = round(_FIELD_ARCMIN * 60 / pix)
         wcs = demo_wcs(pix, n)
         band = Band.monochromatic(name, lam * u.um)

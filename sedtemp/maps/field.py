@@ -202,7 +202,7 @@ def compare_pixels(T_draws: np.ndarray, beta_draws: np.ndarray, fields: Sequence
     return out
 
 
-def _seed_sequence(seed, k):
+def _seed_sequence(seed, k):  # noqa: ARG001 - kept for a uniform call signature
     if isinstance(seed, np.random.SeedSequence):
         return seed
     return np.random.SeedSequence(0 if seed is None else int(seed))

@@ -98,7 +98,7 @@ def _open(image, what):
     raise InputError(f"{what}: expected an ImageHDU, PrimaryHDU or FITS path, got {type(image).__name__}")
 
 
-def _squeeze(data, header, src):
+def _squeeze(data, header, src):  # noqa: ARG001 - kept for a uniform call signature
     if data.ndim > 2:
         if any(s != 1 for s in data.shape[:-2]):
             raise InputError(f"{src}: image has shape {data.shape}; give a 2-D image (one plane per band)")
@@ -258,9 +258,7 @@ def convolve_to_beam(img: BandImage, target_fwhm_deg: float) -> BandImage:
     with np.errstate(invalid="ignore", divide="ignore"):
         data = np.where(keep, num / w, np.nan)
         noise = np.where(keep, np.sqrt(np.maximum(var, 0.0)) / w, np.nan)
-    hist = img.history + [(f"band {img.name}: convolved with a Gaussian of FWHM "
-                          f"{np.sqrt(max(dfwhm2, 0.0)) * 3600:.4g} arcsec to a "
-                          f"{target_fwhm_deg * 3600:.4g} arcsec beam")]
+    hist = [*img.history, f"band {img.name}: convolved with a Gaussian of FWHM " f"{np.sqrt(max(dfwhm2, 0.0)) * 3600:.4g} arcsec to a " f"{target_fwhm_deg * 3600:.4g} arcsec beam"]
     return BandImage(img.name, data, noise, img.wcs, target_fwhm_deg, img.source, hist)
 
 
@@ -272,7 +270,7 @@ def _reproject(img: BandImage, wcs_out: WCS, shape_out) -> BandImage:
         return img
     data, _ = reproject_interp((img.data, img.wcs), wcs_out, shape_out=shape_out, order="bilinear")
     noise, _ = reproject_interp((img.noise, img.wcs), wcs_out, shape_out=shape_out, order="bilinear")
-    hist = img.history + [f"band {img.name}: reprojected (bilinear, reproject_interp) onto the output grid"]
+    hist = [*img.history, f"band {img.name}: reprojected (bilinear, reproject_interp) onto the output grid"]
     return BandImage(img.name, data, noise, wcs_out, img.beam_fwhm_deg, img.source, hist)
 
 

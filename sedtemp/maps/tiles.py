@@ -77,7 +77,7 @@ def _selection(I, S, snr_floor, min_bands):
     """Per pixel: skip code (n,), usable-band mask (n, nb)."""
     usable = np.isfinite(I) & np.isfinite(S) & (S > 0)
     n_use = usable.sum(axis=1)
-    n_det = np.sum(usable & (I >= snr_floor * np.where(usable, S, 1.0)), axis=1)
+    n_det = np.sum(usable & (snr_floor * np.where(usable, S, 1.0) <= I), axis=1)
     code = np.full(I.shape[0], SKIP_CODES["fitted"], np.int16)
     code[n_det < min_bands] = SKIP_CODES["below_snr_floor"]
     code[n_use < min_bands] = SKIP_CODES["too_few_bands"]
@@ -122,8 +122,8 @@ def run_tile(task: TileTask) -> dict:
     cube = np.load(task.inputs, mmap_mode="r")
     nb = cube.shape[0] // 2
     sl = (slice(task.y0, task.y0 + task.ny), slice(task.x0, task.x0 + task.nx))
-    I = np.asarray(cube[(slice(0, nb),) + sl], float).reshape(nb, -1).T
-    S = np.asarray(cube[(slice(nb, 2 * nb),) + sl], float).reshape(nb, -1).T
+    I = np.asarray(cube[(slice(0, nb), *sl)], float).reshape(nb, -1).T
+    S = np.asarray(cube[(slice(nb, 2 * nb), *sl)], float).reshape(nb, -1).T
     code, usable = _selection(I, S, task.snr_floor, task.min_bands)
     yy, xx = np.mgrid[sl]
     yy, xx = yy.ravel(), xx.ravel()
@@ -150,7 +150,7 @@ def _compare_tile(task, sel, yy, xx, sl, draws, flags, cmp_seeds, n):
     if task.aux is not None:
         a = np.load(task.aux, mmap_mode="r")
         for j, key in enumerate(task.aux_keys):
-            aux[key] = np.asarray(a[(j,) + sl], float).ravel()[sel]
+            aux[key] = np.asarray(a[(j, *sl)], float).ravel()[sel]
     wcs = WCS(fits.Header.fromstring(task.wcs_header))
     spec = task.field
     flds = pixel_fields(spec, wcs, yy[sel], xx[sel], aux)

@@ -24,8 +24,8 @@ import astropy.units as u
 import numpy as np
 
 from .._io import atomic_write_text, atomic_write_with
-from ..pipeline import Workflow, parse_quantity, parse_workflow
 from ..errors import ConfigError, InputError
+from ..pipeline import Workflow, parse_quantity, parse_workflow
 from .field import COMPARE_CODES
 from .fitting import fit_maps
 from .tiles import FLAG_BITS, SKIP_CODES

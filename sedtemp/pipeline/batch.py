@@ -35,6 +35,7 @@ from .checkpoints import OutputLock, RunState, input_digests, unmasked
 from .config import OUTPUT_FORMATS, Workflow
 from .executors import EXECUTORS, InlineExecutor, open_executor
 from .figures import SOURCES_DIR, catalogue_plots, select_plot_sources, source_plots
+from .population_stage import population_stage
 from .report import Progress, write_report
 from .schema import (
     CLASS_COLUMN,
@@ -45,7 +46,6 @@ from .schema import (
     order,
     spec,
 )
-from .population_stage import population_stage
 from .stages import process_chunk
 
 __all__ = [
@@ -146,7 +146,7 @@ def _result_names(wf: Workflow) -> list[str]:
 
 def empty_results(mapped: MappedCatalog, wf: Workflow) -> Table:
     """The results table of an empty catalogue: every column (with its unit), no rows."""
-    tab = assemble(mapped, [{name: None for name in _result_names(wf)}][:0], [], [], workflow=wf)
+    tab = assemble(mapped, [dict.fromkeys(_result_names(wf))][:0], [], [], workflow=wf)
     for name in order(_result_names(wf)):
         if name not in tab.colnames:
             tab[name] = np.zeros(0, dtype=_KINDS[spec(name).kind])

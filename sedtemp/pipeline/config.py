@@ -363,7 +363,7 @@ class Workflow:
     compare: dict
     output: dict
     population: dict = field(default_factory=lambda: {"enabled": False})
-    base_dir: Path = Path(".")
+    base_dir: Path = Path()
     source: str = "<workflow>"
     digest: str = ""
     file: Path | None = None

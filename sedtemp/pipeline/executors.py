@@ -74,7 +74,7 @@ def import_optional(module: str, extra: str):
     try:
         return importlib.import_module(module)
     except ImportError as err:
-        raise ImportError(f"executor needs {module.split('.')[0]}; install it with "
+        raise ImportError(f"executor needs {module.split('.', maxsplit=1)[0]}; install it with "
                           f"pip install 'sedtemp[{extra}]'") from err
 
 

@@ -125,6 +125,6 @@ def _read_h5(path: Path) -> Table:
     except ImportError as err:
         raise ImportError(f"{path} is HDF5 and needs h5py: pip install 'sedtemp[hdf5]'") from err
     with h5py.File(path, "r") as h5:
-        tab = Table({k: np.asarray(h5[k]) for k in h5.keys()})
+        tab = Table({k: np.asarray(h5[k]) for k in h5})
     tab["id"] = [v.decode() if isinstance(v, bytes) else str(v) for v in tab["id"]]
     return tab

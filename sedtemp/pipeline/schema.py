@@ -180,7 +180,7 @@ def _values(name, vals):
     return np.array([NONE_TEXT if v is None or str(v) == "" else str(v) for v in vals], dtype=str)
 
 
-def assemble(mapped, parts, status, reason, *, draws=None, n_keep=0, workflow=None) -> Table:
+def assemble(mapped, parts, status, reason, *, draws=None, n_keep=0, workflow=None) -> Table:  # noqa: ARG001 - kept for a uniform call signature
     """Per-stage row dicts -> one Table: id first, schema columns in order, units and metadata set.
 
     Parameters

@@ -122,7 +122,7 @@ def grid_result(workflow: Workflow, mapped: MappedCatalog, index: int):
     used = ~mapped.missing[i]
     return FitResult(samples=samples, log_prob=np.full(n, np.nan), param_names=tuple(model.param_names),
                      units=dict(model.param_units), ess={p: float(n) for p in model.param_names},
-                     tau={p: 1.0 for p in model.param_names}, acceptance_fraction=float("nan"),
+                     tau=dict.fromkeys(model.param_names, 1.0), acceptance_fraction=float("nan"),
                      converged=True, flags=tuple(extra["flags"][0]), map_params=map_params,
                      chi2_map=float(cols["chi2_map"][0]), dof=int(cols["dof"][0]), ppp=float(cols["ppp"][0]),
                      n_bands_used=int(cols["n_bands_used"][0]), method="grid", model=model,

@@ -29,7 +29,7 @@ def _units_row(cells):
     """Units parsed from a CSV row, or None if the row is data (some cell is a number)."""
     units = []
     for c in cells:
-        c = c.strip()
+        c = c.strip()  # noqa: PLW2901 - the loop value is normalised in place
         if not c:
             units.append(None)
             continue
@@ -70,7 +70,7 @@ def _read_csv_with_units(path: Path) -> Table:
     converters = _text_columns(rows[0], body) if rows else {}
     if not body:  # a header alone: an empty catalogue with these columns
         return Table(names=[h.strip() for h in rows[0]] if rows else [], dtype=[float] * len(rows[0] if rows else []))
-    tab = Table.read([data[0]] + body, format="ascii.csv", converters=converters)
+    tab = Table.read([data[0], *body], format="ascii.csv", converters=converters)
     for name, unit in zip(rows[0], units or []):
         if unit is not None and name.strip() in tab.colnames:
             tab[name.strip()].unit = unit

@@ -180,7 +180,7 @@ def population_plot(table: Table | Mapping, *, draws: Mapping | None = None, fig
     Raises
     ------
     InputError
-        Missing columns, quantiles out of order, |T_beta_corr| >= 1, an
+        Missing columns, quantiles out of order, ``|T_beta_corr|`` >= 1, an
         unknown heating class, or ``draws`` for an id that is not in the table.
 
     Notes

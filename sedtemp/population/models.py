@@ -32,7 +32,7 @@ __all__ = [
     "population_model",
 ]
 
-#: Largest |rho| the hyper-prior allows: beyond it the Gaussian is numerically singular.
+#: Largest ``|rho|`` the hyper-prior allows: beyond it the Gaussian is numerically singular.
 RHO_MAX = 0.99
 _LOG_2PI = np.log(2.0 * np.pi)
 
@@ -130,7 +130,7 @@ class MixturePopulation:
     """
 
     name = "mixture"
-    param_names = ("fraction_2",) + tuple(f"{p}_{k}" for k in (1, 2) for p in GaussianPopulation.param_names)
+    param_names = ("fraction_2", *tuple(f"{p}_{k}" for k in (1, 2) for p in GaussianPopulation.param_names))
 
     def __init__(self, low, high):
         self._one = GaussianPopulation(low, high)

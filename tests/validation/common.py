@@ -445,7 +445,7 @@ def simulate_field_sources(kind, n, snr, rng, *, bands, calibration=None):
         t_eq[i] = equilibrium_temperature(f, OPACITY, scale=scale[i], beta=beta[i]).to_value(u.K)
     T = heat * t_eq
     lo, hi = _CMP_T_RANGE
-    if np.any((T <= lo) | (T >= hi)):  # the design keeps every truth inside the fit prior
+    if np.any((lo >= T) | (hi <= T)):  # the design keeps every truth inside the fit prior
         raise RuntimeError(f"{kind}: simulated T outside the fit prior {_CMP_T_RANGE}: {T.min():.2f}-{T.max():.2f} K")
     theta = np.column_stack([lmass, T, beta])
     pop = simulate(make_compare_model(), bands, prior, n, snr, rng, calibration=calibration, theta=theta)

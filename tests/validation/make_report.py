@@ -29,9 +29,9 @@ import numpy as np
 from matplotlib.figure import Figure
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-import common as C  # noqa: E402  (run as a script from any directory)
+import common as C
 
-from sedtemp.priors import Gaussian, LogUniform  # noqa: E402
+from sedtemp.priors import Gaussian, LogUniform
 
 PARAMS = ("log10_mass", "T", "beta")
 SNRS = (5.0, 20.0, 100.0)
@@ -320,7 +320,7 @@ def fig_tbeta(scatter, path):
 
 
 def _cov_table(res, method):
-    lines = [f"| config | param | 68 % coverage | 95 % coverage | SBC p | median bias | bias / sd | extra |",
+    lines = ["| config | param | 68 % coverage | 95 % coverage | SBC p | median bias | bias / sd | extra |",
              "|---|---|---|---|---|---|---|---|"]
     for key, r in res.items():
         extra = ""
@@ -413,7 +413,7 @@ def _fixed_truth_lines(res):
     for key, r in res.items():
         L.append(f"| {key} | {r['n']} | {r['bias']:+.2f} | {100 * r['cov68']:.0f} % | {r['bias_linear_prior']:+.2f} | "
                  f"{100 * r['cov68_linear_prior']:.0f} % |")
-    return L + [""]
+    return [*L, ""]
 
 
 def main(argv=None):

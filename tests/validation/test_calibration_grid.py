@@ -46,7 +46,7 @@ def test_grid_coverage_fixed_snr(n_bands, snr):
     model, prior, bands = C.make_model(), C.make_prior(), C.make_bands(n_bands)
     cal = C.make_calibration(bands)
     pop = C.simulate(model, bands, prior, 800, snr, np.random.default_rng([11, n_bands, int(snr)]), calibration=cal)
-    cols, draws, flags = C.grid_fit(pop, bands, model, prior, calibration=cal, chunk=50,
+    cols, _draws, flags = C.grid_fit(pop, bands, model, prior, calibration=cal, chunk=50,
                                     T_nodes=FINE_T, beta_nodes=FINE_BETA, seed=1)
     assert np.mean(["grid_too_coarse" in f for f in flags]) < 0.01
     _coverage_checks(pop, cols)
@@ -86,7 +86,7 @@ def test_grid_sbc_ranks_uniform_constant_depth(n_bands, snr):
 def test_grid_sbc_ranks_uniform_for_very_bright_sources():
     # Was a strict xfail (the "known limitation" of README): fixed by the zoom that
     # re-centres on a local optimum and widens until the mode is interior.
-    pop, draws, flags, peak_snr = _depth_population(7, 20.0)
+    pop, draws, _flags, peak_snr = _depth_population(7, 20.0)
     keep = peak_snr >= _SNR_VALIDATED
     assert keep.sum() > 50
     for j, k in ((1, "T"), (2, "beta")):

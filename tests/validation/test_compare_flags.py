@@ -37,7 +37,7 @@ P_DECIDE = 0.99
 
 @pytest.mark.parametrize("snr", [5.0, 20.0, 100.0])
 def test_false_positive_rate(snr):
-    fs, flags = C.run_comparison_class("equilibrium", N, snr, 41)
+    _fs, flags = C.run_comparison_class("equilibrium", N, snr, 41)
     tail = 1 - P_DECIDE
     for flag in ("extra_heating", "shielded"):
         frac = np.mean(flags == flag)

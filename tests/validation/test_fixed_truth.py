@@ -32,7 +32,7 @@ def fixed_truth(T, *, n=300, depth=10.0, seed=8, prior=None):
         g = grid_posterior(f * u.Jy, e * u.Jy, BANDS, model=MODEL, seed=1, prior=prior)
     sd = 0.5 * (g["T_p84"] - g["T_p16"])
     pull = (np.asarray(g["T_median"]) - T) / sd
-    cover = np.mean((g["T_p16"] < T) & (T < g["T_p84"]))
+    cover = np.mean((g["T_p16"] < T) & (g["T_p84"] > T))
     return float(np.mean(pull)), float(cover)
 
 

@@ -101,7 +101,7 @@ def test_heated_fraction_within_its_interval(frac):
     bands = C.make_bands(7)
     cal = C.make_calibration(bands)
     n, snr = 300, 20.0
-    n_hot = int(round(frac * n))
+    n_hot = round(frac * n)
     rng = np.random.default_rng([53, int(100 * frac)])
     parts = [C.simulate_field_sources("equilibrium", n - n_hot, snr, rng, bands=bands, calibration=cal)]
     if n_hot:
