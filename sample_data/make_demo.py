@@ -118,10 +118,16 @@ kind = "cmb"
 directory = "sedtemp-demo"
 keep_draws = true
 n_keep = 200
-# corner, SED and trace plots of the flagged sources in sedtemp-demo/sources; each is an
-# MCMC fit (emcee settings of [fit]), so the demo caps them
+# corner and SED plots of the flagged sources in sedtemp-demo/sources, drawn from
+# their grid posteriors (trace plots too for the MCMC sources); capped
 source_plots = "flagged"
 max_source_plots = 12
+
+# the (T, beta) population of the cloud's sources, deconvolved from the
+# per-source errors (population.ecsv and population_posterior.png)
+[population]
+enabled = true
+n_steps = 1000
 """
 
 

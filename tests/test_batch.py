@@ -241,17 +241,16 @@ def test_source_plots_of_flagged_sources_with_cap(tmp_path, catalog):
     assert 'source plots: none ([output] source_plots = "none")' in (tmp_path / "results-report.txt").read_text()
 
 
-def test_keep_draws_without_h5py_fails_before_fitting(tmp_path, catalog, monkeypatch):
+def test_keep_draws_without_h5py_go_to_fits(tmp_path, catalog, monkeypatch):
+    from astropy.table import Table
+
     from sedtemp.pipeline.batch import check_optional_packages
 
     monkeypatch.setitem(sys.modules, "h5py", None)  # `import h5py` now raises ImportError
     wf = make_workflow()
     wf.output["keep_draws"] = True
-    msg = r"\[output\] keep_draws = true needs h5py, which is not installed; pip install 'sedtemp\[hdf5\]'"
-    with pytest.raises(ImportError, match=msg):
-        check_optional_packages(wf)
-    with pytest.raises(ImportError, match=msg):
-        run_batch(map_catalog(catalog[:2], wf), wf, output_dir=tmp_path / "out")
-    assert not (tmp_path / "out").exists()  # refused at the start: nothing fitted or written
-    wf.output["keep_draws"] = False
-    check_optional_packages(wf)  # serial executor, no draws: nothing optional needed
+    check_optional_packages(wf)  # draws need no optional package: FITS without h5py
+    res = run_batch(map_catalog(catalog[:2], wf), wf, output_dir=tmp_path / "out")
+    draws = Table.read(tmp_path / "out" / "results-draws.fits")
+    assert list(draws["id"]) == [str(v) for v in res[res.colnames[0]]]
+    np.testing.assert_array_equal(draws["T"], np.asarray(res["draws_T"], float))  # exact copy

@@ -277,9 +277,11 @@ def test_demo_without_h5py(tmp_path, monkeypatch, capsys):
     _patch_demo(monkeypatch, run={"executor": "serial"}, output={"max_source_plots": 0})
     assert main(["demo", "--output", str(tmp_path), "--sources", "6"]) == 0
     out = capsys.readouterr().out
-    assert out.startswith("demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws not "
-                          "written\n")
+    assert out.startswith("demo: h5py is not installed (pip install 'sedtemp[hdf5]'): posterior draws go to a "
+                          "FITS table\n")
     assert (tmp_path / "results.ecsv").exists() and not (tmp_path / "results-draws.h5").exists()
+    assert (tmp_path / "results-draws.fits").exists()
+    assert (tmp_path / "population.ecsv").exists()  # the demo's population stage ran on those draws
     assert (tmp_path / "population.png").exists()
     src = json.loads((tmp_path / "results-report.json").read_text())["plots"]["sources"]
     assert src["made"] == 0 and src["cap_reached"] == (src["selected"] > 0)  # cap 0: none made
