@@ -220,7 +220,7 @@ class Band:
     Parameters
     ----------
     name : str
-        Band name (unique within a :class:`BandSet`), e.g. ``"pacs160"``.
+        Band name (unique within a :class:`BandSet`), e.g. ``"k160"``.
     nu_or_wavelength : Quantity or array_like, shape (n_nodes,)
         Abscissa of the response curve: frequencies or wavelengths (any
         unit convertible via ``u.spectral()``). Bare numbers are wavelengths
@@ -289,12 +289,11 @@ class Band:
 
     References
     ----------
-    ISOPHOT Data Users Manual, Version 4.1 (SAI/95-220/Dc), Appendix C:
-    flux densities quoted for a nu^-1 reference spectrum (the IRAS
-    convention), true flux density = quoted / K (their Eq. C.1), K from
-    response-weighted integrals (Sect. C.2). Photon-counting passbands weight
-    by R / (h nu): Bessell & Murphy (2012, PASP 124, 140), Appendix A (from
-    memory).
+    Flux densities quoted for a nu^-1 reference spectrum (the common far-IR
+    catalogue convention): true flux density = quoted / K, with K the ratio
+    of response-weighted integrals of the source and reference spectra.
+    Photon-counting passbands weight by R / (h nu): Bessell & Murphy (2012,
+    PASP 124, 140), Appendix A (from memory).
     """
 
     name: str

@@ -22,7 +22,7 @@ def test_matches_scipy_multivariate_normal_with_calibration():
     # Reference: scipy.stats.multivariate_normal with the dense covariance
     # C = diag(sigma^2) + sum_g d_g^2 m_g m_g^T; Woodbury must agree to rounding.
     rng = np.random.default_rng(3)
-    cal = Calibration({"pacs": (["b70", "b160"], 0.07), "spire": (["b250", "b350", "b500"], 0.05)})
+    cal = Calibration({"short": (["b70", "b160"], 0.07), "long": (["b250", "b350", "b500"], 0.05)})
     mat = cal.matrix(NAMES)
     flux = rng.uniform(1, 5, 5)
     err = 0.1 * flux
