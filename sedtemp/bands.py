@@ -30,6 +30,7 @@ from pathlib import Path
 import astropy.units as u
 import numpy as np
 
+from ._numerics import trapezoid_weights
 from ._units import to_hz
 from .errors import InputError
 from .planck import C_LIGHT
@@ -159,15 +160,6 @@ def _sorted_nodes(nu_hz: np.ndarray, resp: np.ndarray, name: str):
             "value must appear once"
         )
     return nu_hz, resp
-
-
-def _trapezoid_node_weights(x: np.ndarray) -> np.ndarray:
-    """Weights t with sum(t * f) = trapezoid integral of f on the sorted nodes x."""
-    dx = np.diff(x)
-    t = np.zeros_like(x)
-    t[:-1] += 0.5 * dx
-    t[1:] += 0.5 * dx
-    return t
 
 
 def _readonly(a: np.ndarray) -> np.ndarray:
@@ -321,7 +313,7 @@ class Band:
         nu_hz = _spectral_hz(nu_or_wavelength, "abscissa", name)
         nu_hz, resp = _sorted_nodes(nu_hz, _response_array(response, name), name)
 
-        kernel = _trapezoid_node_weights(nu_hz) * resp * nu_hz**power
+        kernel = trapezoid_weights(nu_hz) * resp * nu_hz**power
         if reference_wavelength is None:
             nu_ref = float(np.sum(kernel * nu_hz) / np.sum(kernel))
         else:

@@ -15,10 +15,12 @@ import functools
 from collections.abc import Callable, Mapping, Sequence
 from importlib.metadata import entry_points
 
+import astropy.units as u
+
 from . import radiation
 from .errors import ConfigError, InputError
 
-__all__ = ["FIELD_GROUP", "BUILTIN_FIELDS", "field_kinds", "field_factory", "build_field"]
+__all__ = ["FIELD_GROUP", "BUILTIN_FIELDS", "argument_value", "field_kinds", "field_factory", "build_field"]
 
 #: Entry-point group under which other packages register field kinds.
 FIELD_GROUP = "sedtemp.fields"
@@ -30,6 +32,24 @@ BUILTIN_FIELDS: Mapping[str, Callable[..., radiation.RadiationField]] = {
     "blackbody": radiation.Blackbody,
     "table": radiation.Tabulated,
 }
+
+
+def argument_value(value):
+    """A field argument as a workflow gives it: a quantity string becomes a Quantity, the rest stays.
+
+    Examples
+    --------
+    >>> argument_value("2 pc")
+    <Quantity 2. pc>
+    >>> argument_value(3.0)
+    3.0
+    """
+    if isinstance(value, str):
+        try:
+            return u.Quantity(value)
+        except (TypeError, ValueError):
+            return value
+    return value
 
 
 @functools.cache

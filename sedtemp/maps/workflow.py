@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import json
 import time
-import tomllib
 from collections import Counter
 from pathlib import Path
 
@@ -25,7 +24,8 @@ import numpy as np
 
 from .._io import atomic_write_text, atomic_write_with
 from ..errors import ConfigError, InputError
-from ..pipeline import Workflow, parse_quantity, parse_workflow
+from ..fields import argument_value
+from ..pipeline.config import Workflow, parse_quantity, parse_workflow, read_toml
 from .field import COMPARE_CODES
 from .fitting import fit_maps
 from .tiles import FLAG_BITS, SKIP_CODES
@@ -83,7 +83,7 @@ class MapWorkflow:
                 elif key in ("kind", "position"):
                     out[key] = value
                 else:
-                    out[key] = _value(value)
+                    out[key] = argument_value(value)
             comps.append(out)
         spec = {"components": comps, "uncertainty": f["uncertainty"],
                 "thresholds": self.wf.compare["thresholds"] or None}
@@ -98,13 +98,6 @@ class MapWorkflow:
         return spec
 
 
-def _value(value):
-    if isinstance(value, str):
-        try:
-            return u.Quantity(value)
-        except (TypeError, ValueError):
-            return value
-    return value
 
 
 def _check(table, types_of, section, source):
@@ -182,14 +175,7 @@ def load_map_workflow(path) -> MapWorkflow:
         Unreadable file, invalid TOML, or an invalid map workflow.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as err:
-        raise ConfigError(f"cannot read workflow file {str(path)!r}: {err.strerror}") from err
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as err:
-        raise ConfigError(f"{path.name}: not valid TOML: {err}") from err
+    data, _ = read_toml(path)
     return parse_map_workflow(data, base_dir=path.resolve().parent, source=path.name)
 
 

@@ -27,7 +27,7 @@ from astropy.table import MaskedColumn
 
 from .._units import flux_density_si, group_causes, parse_unit
 from ..errors import CatalogError, ConfigError, InputError
-from ..fields import build_field
+from ..fields import argument_value, build_field
 from .config import Workflow, band_solid_angle, parse_quantity
 from .tables import read_catalog, write_table
 
@@ -356,7 +356,7 @@ def _field_components(tab, wf, distance_m, redshift, keys, probs, catalog_units)
                     continue
                 out[arg] = vals if unit is None or unit == u.dimensionless_unscaled else vals * unit
             else:
-                out[key] = _field_value(value)
+                out[key] = argument_value(value)
         if "position" in comp:
             sep = _separation(tab, wf, comp, distance_m, probs, catalog_units)
             if sep is not None:
@@ -367,14 +367,6 @@ def _field_components(tab, wf, distance_m, redshift, keys, probs, catalog_units)
     return comps
 
 
-def _field_value(value):
-    """TOML value of a field argument: a quantity string becomes a Quantity, numbers stay."""
-    if isinstance(value, str):
-        try:
-            return u.Quantity(value)
-        except (TypeError, ValueError):
-            return value
-    return value
 
 
 def _min_bands(wf, n_free):

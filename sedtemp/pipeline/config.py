@@ -138,6 +138,7 @@ __all__ = [
     "Workflow",
     "band_solid_angle",
     "load_workflow",
+    "read_toml",
     "lookup_model",
     "parse_quantity",
     "parse_workflow",
@@ -678,6 +679,25 @@ def parse_workflow(data, *, base_dir=".", source="<workflow>", text=None) -> Wor
                     source=source, digest=_digest(data), raw=copy.deepcopy(data), text=text, **sections)
 
 
+def read_toml(path) -> tuple[dict, str]:
+    """(mapping, text) of a workflow TOML file.
+
+    Raises
+    ------
+    ConfigError
+        The file cannot be read, or is not valid TOML (with tomllib's line and column).
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as err:
+        raise ConfigError(f"cannot read workflow file {str(path)!r}: {err.strerror}") from err
+    try:
+        return tomllib.loads(text), text
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError(f"{path.name}: not valid TOML: {err}") from err
+
+
 def load_workflow(path) -> Workflow:
     """Read and validate a workflow TOML file.
 
@@ -688,14 +708,7 @@ def load_workflow(path) -> Workflow:
         tomllib's line and column), or fails :func:`parse_workflow`.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as err:
-        raise ConfigError(f"cannot read workflow file {str(path)!r}: {err.strerror}") from err
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as err:
-        raise ConfigError(f"{path.name}: not valid TOML: {err}") from err
+    data, text = read_toml(path)
     wf = parse_workflow(data, base_dir=path.resolve().parent, source=path.name, text=text)
     wf.file = path.resolve()
     return wf
