@@ -218,6 +218,12 @@ def _cmd_check(args) -> int:
     for key, reason in zip(mapped.keys, mapped.skip_reason):
         if reason:
             _say(args, f"  skip {key}: {reason}")
+    if not args.show:  # a cheap look at the field and opacity: does T_eq rest on an extrapolation?
+        from .inspect_workflow import t_eq_range
+
+        teq = t_eq_range(wf, mapped, max_sources=50)
+        if teq is not None and teq["caution"]:
+            print(f"sedtemp check: {teq['caution']}", file=sys.stderr)
     if args.show:
         from .cli_show import show
 

@@ -55,6 +55,8 @@ def _t_eq_lines(wf, mapped, max_sources):
     if r["n"]:
         lines.append(f"T_eq at beta = {r['beta']:g}: {r['min']:.1f} to {r['max']:.1f} K (median {r['median']:.1f} K) "
                      f"over {sample} of {r['n_total']} source(s); the run uses each source's fitted beta")
+    if r.get("caution"):
+        lines.append(r["caution"])
     if r["failed"]:
         lines.append(f"T_eq could not be computed for {len(r['failed'])} source(s):")
         keys, causes = zip(*r["failed"])

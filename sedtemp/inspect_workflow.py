@@ -192,8 +192,12 @@ def t_eq_range(wf, mapped, *, max_sources: int = 200, seed: int = 0):
         ``n`` (sources evaluated), ``n_total``, ``beta``, ``min``, ``median``,
         ``max`` (K), ``failed`` (list of (key, message)); None without a field.
     """
-    from .equilibrium import equilibrium_temperature
+    import warnings
+
+    from .equilibrium import predict_chunk
+    from .errors import SedtempWarning
     from .fields import build_field
+    from .pipeline.report import extrapolation_caution
 
     if not wf.field["components"] or len(mapped) == 0:
         return None
@@ -202,15 +206,21 @@ def t_eq_range(wf, mapped, *, max_sources: int = 200, seed: int = 0):
         np.random.default_rng(seed).choice(n, size=max_sources, replace=False))
     kappa = wf.opacity()
     beta = float(wf.model["beta"]) if wf.model["beta"] is not None else float(kappa.beta)
-    temps, failed = [], []
-    for i in pick:  # one equilibrium solve per sampled source
+    fields, keys, failed = [], [], []
+    for i in pick:  # the fields one by one (a bad one is reported), the solve in one call
         try:
-            fld = build_field(mapped.field_arguments(int(i)), A_V=float(mapped.A_V[i]))
-            temps.append(float(u.Quantity(equilibrium_temperature(fld, kappa, beta=beta), u.K).value))
+            fields.append(build_field(mapped.field_arguments(int(i)), A_V=float(mapped.A_V[i])))
+            keys.append(str(mapped.keys[i]))
         except Exception as err:  # noqa: BLE001 - reported per source, the check goes on
             failed.append((str(mapped.keys[i]), f"{type(err).__name__}: {err}"))
-    t = np.asarray(temps)
-    return {"n": int(t.size), "n_total": n, "beta": beta, "failed": failed,
+    t, frac = np.array([]), np.array([])
+    if fields:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", SedtempWarning)  # said below, as one caution line
+            res = predict_chunk(fields, kappa, np.full(len(fields), beta), details=True)
+        t, frac = np.asarray(res["T_eq"]), np.asarray(res["opacity_extrapolated_fraction"])
+    caution = extrapolation_caution(int(np.sum(frac > 0.01)), float(frac.max()) if frac.size else 0.0, t.size)
+    return {"n": int(t.size), "n_total": n, "beta": beta, "failed": failed, "caution": caution,
             "min": float(t.min()) if t.size else np.nan, "median": float(np.median(t)) if t.size else np.nan,
             "max": float(t.max()) if t.size else np.nan}
 

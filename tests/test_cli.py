@@ -557,3 +557,20 @@ def test_map_demo_and_map_command(tmp_path, capsys):
         # the same workflow and seed: the same maps, pixel for pixel
         np.testing.assert_array_equal(a["T_MEDIAN"].data, b["T_MEDIAN"].data)
     assert main(["map", str(tmp_path / "nope.toml")]) == 1
+
+
+def test_bare_power_law_under_starlight_is_a_caution_at_check_and_run(case, capsys):
+    """A far-IR power law with no UV cap under a star: check and the run summary say so."""
+    tmp, wf = case
+    field = ('[[field.components]]\nkind = "star"\nteff = "20000 K"\nluminosity = "1000 solLum"\n'
+             'distance = "0.3 pc"\n\n[model]\nopacity = { kappa0 = "10 cm2 g-1", nu0 = "1 THz", beta = 2.0 }\n')
+    wf.write_text(wf.read_text() + "\n" + field)
+    assert main(["check", str(wf)]) == 0  # legal input: a caution, not an error
+    err = capsys.readouterr().err
+    assert "of the absorbed power" in err and "comes from wavelengths where the opacity law is extrapolated" in err
+    assert main(["run", str(wf), "--quiet"]) == 0
+    report = (tmp / "out" / "results-report.txt").read_text()
+    assert "where the opacity law is extrapolated" in report
+    res = Table.read(tmp / "out" / "results.ecsv")
+    # a 20 000 K star puts nearly all of its power shortward of 30 um, where the bare law is extrapolated
+    assert np.nanmin(res["opacity_extrapolated_fraction"]) > 0.9

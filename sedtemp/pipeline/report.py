@@ -25,6 +25,7 @@ from astropy.table import Table
 
 from .._io import atomic_write_text
 from .._version import __version__
+from ..absorption import EXTRAPOLATION_WARN_FRACTION
 from .schema import (
     CLASS_COLUMN,
     FIT_FLAGS_COLUMN,
@@ -34,7 +35,8 @@ from .schema import (
     STATUS_SKIPPED,
 )
 
-__all__ = ["LOG_EVERY_S", "Progress", "run_summary", "summary_lines", "write_report"]
+__all__ = [
+    "extrapolation_caution","LOG_EVERY_S", "Progress", "run_summary", "summary_lines", "write_report"]
 
 #: Seconds between plain progress lines when stderr is not a terminal.
 LOG_EVERY_S = 10.0
@@ -149,7 +151,29 @@ def run_summary(tab: Table) -> dict:
         cand = [i for i in np.argsort(-np.nan_to_num(sure)) if ok[i] and cls[i] in ("extra_heating", "shielded")]
         nxt += [ids[i] for i in cand]
     return {"status": dict(status), "fit_quality": quality, "classes": classes,
-            "check_next": list(dict.fromkeys(nxt))[:_NEXT]}
+            "check_next": list(dict.fromkeys(nxt))[:_NEXT],
+            "opacity_extrapolated": _extrapolated(tab, ok)}
+
+
+def _extrapolated(tab, ok):
+    """(count above the warning fraction, largest fraction) of opacity_extrapolated_fraction, or None."""
+    if "opacity_extrapolated_fraction" not in tab.colnames:
+        return None
+    f = np.asarray(tab["opacity_extrapolated_fraction"], float)[ok]
+    f = f[np.isfinite(f)]
+    if f.size == 0:
+        return None
+    return int(np.sum(f > EXTRAPOLATION_WARN_FRACTION)), float(f.max())
+
+
+def extrapolation_caution(n_over: int, largest: float, n: int) -> str | None:
+    """The caution line for sources whose absorbed power comes partly from an extrapolated opacity."""
+    if n_over == 0:
+        return None
+    return (f"caution: for {n_over} of {n} source(s), more than {EXTRAPOLATION_WARN_FRACTION:.0%} of the "
+            f"absorbed power (up to {largest:.0%}) comes from wavelengths where the opacity law is "
+            "extrapolated (a bare far-IR power law in the UV/optical): T_eq is not physical there; "
+            "give [model] opacity a grain_radius (UV cap) or a tabulated opacity")
 
 
 def _fmt(r):
@@ -167,6 +191,11 @@ def summary_lines(summary: dict, n: int) -> list[str]:
                      f"T_fit/T_eq {_fmt(c['ratio'])})")
     if summary["check_next"]:
         lines.append("check these next: " + ", ".join(summary["check_next"]))
+    if summary.get("opacity_extrapolated"):
+        n_over, largest = summary["opacity_extrapolated"]
+        caution = extrapolation_caution(n_over, largest, s.get(STATUS_OK, 0))
+        if caution:
+            lines.append(caution)
     return lines
 
 
