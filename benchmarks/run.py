@@ -2,8 +2,9 @@
 
 Usage::
 
-    python benchmarks/run.py            # full run (< ~10 min on 2 cores)
+    python benchmarks/run.py            # full run (~25 min on 2 cores, 10^6-row run included)
     python benchmarks/run.py --quick    # smoke run with small sizes
+    python benchmarks/run.py --maps     # the map benchmark (benchmarks/maps.py)
 
 On the same simulated sources it measures
 
@@ -422,7 +423,15 @@ def main(argv=None):
     ap.add_argument("--profile", action="store_true", help="cProfile fit_source and grid mode instead")
     ap.add_argument("--memory-child", type=int, default=None, help=argparse.SUPPRESS)
     ap.add_argument("--workdir", default="benchmark-work", help="folder of the `sedtemp run` benchmark files")
+    ap.add_argument("--maps", action="store_true",
+                    help="the map benchmark instead (benchmarks/maps.py: 1000 x 1000 pixels, 5 bands; "
+                         "with --quick 200 x 200)")
     args = ap.parse_args(argv)
+    if args.maps:
+        import runpy
+
+        maps = runpy.run_path(str(Path(__file__).with_name("maps.py")), run_name="benchmark_maps")
+        return maps["main"](["--quick"] if args.quick else [])
     n_t, n_beta = (0, 0) if args.memory_grid == "default" else map(int, args.memory_grid.split("x"))
     if args.memory_child is not None:
         memory_child(args.memory_child, args.chunk_size, n_t, n_beta)
