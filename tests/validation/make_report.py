@@ -95,7 +95,7 @@ def _mcmc_task(args):
     rng = np.random.default_rng([seed, nb, int(snr), i])
     pop = C.simulate(model, bands, prior, 1, snr, rng, calibration=cal, theta=theta)
     s, d, conv = C.mcmc_fit(pop.flux[0], pop.err[0], bands, model, prior, calibration=cal,
-                            seed=[seed, i], n_walkers=n_walkers)
+                            seed=np.random.SeedSequence([seed, i]), n_walkers=n_walkers)
     return pop.theta[0], s, d, conv
 
 
