@@ -253,7 +253,14 @@ def _summary(args, res, out, wf):
     report = out / (name + "-report.txt")
     _say(args, f"report:  {report}")
     rep = report.with_suffix(".json")
-    plots = json.loads(rep.read_text(encoding="utf-8")).get("plots", {}) if rep.exists() else {}
+    rep_data = json.loads(rep.read_text(encoding="utf-8")) if rep.exists() else {}
+    plots = rep_data.get("plots", {})
+    pop = rep_data.get("population")
+    if pop:
+        _say(args, "population: " + ", ".join(f"{k} {v:.3g}" for k, v in pop["summary"].items())
+             + f" (posterior medians; {out / pop['files'][0]})")
+        for w in pop.get("warnings", []):
+            _say(args, f"population caution: {w}")
     cat = plots.get("catalogue")
     if cat is not None:
         _say(args, "plots:   " + (", ".join(str(out / f"{n}.png") for n in cat["made"]) or "none"))
