@@ -467,9 +467,11 @@ def main(argv=None):
     n_e2e, n_e2e_base, n_big = (60, 1, 10**4) if q else (300, 3, 10**6)
     e2e = bench_end_to_end(n_e2e, n_e2e_base)
     print(f"[6] end to end        {e2e['detail']}", flush=True)
+    # the memory children first: on Linux a child's ru_maxrss starts from its parent's
+    # high-water mark of waited children, so the big `sedtemp run` would mask theirs
+    mem = bench_memory(mem_rows, args.chunk_size, n_t, n_beta)
     big = bench_sedtemp_run(n_big, Path(args.workdir))
     print(f"[7] sedtemp run       {big.get('detail', big.get('skipped'))}", flush=True)
-    mem = bench_memory(mem_rows, args.chunk_size, n_t, n_beta)
     qa = quantile_agreement(mc["fits"], gr["cols"])
 
     rows = [

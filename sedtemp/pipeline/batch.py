@@ -277,7 +277,7 @@ def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
     done_rows = {int(r) for t in tabs for r in t["_row"]}
     n_resumed = len(done_rows)
     todo = np.array([i for i in range(len(mapped)) if i not in done_rows], dtype=int)
-    n_keep = wf.output["n_keep"] if (keep_draws or wf.output["keep_draws"]) else 0
+    n_keep = wf.output["n_keep"] if (keep_draws or wf.output["keep_draws"] or wf.population.get("enabled")) else 0
 
     def on_done(tab):
         if state is not None:
