@@ -127,7 +127,8 @@ max_source_plots = 12
 # per-source errors (population.ecsv and population_posterior.png)
 [population]
 enabled = true
-n_steps = 1000
+n_walkers = 16
+n_steps = 800
 """
 
 
