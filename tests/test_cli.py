@@ -574,3 +574,18 @@ def test_bare_power_law_under_starlight_is_a_caution_at_check_and_run(case, caps
     res = Table.read(tmp / "out" / "results.ecsv")
     # a 20 000 K star puts nearly all of its power shortward of 30 um, where the bare law is extrapolated
     assert np.nanmin(res["opacity_extrapolated_fraction"]) > 0.9
+
+
+def test_population_stage_infers_the_heated_fraction_from_kept_ratio_draws(case):
+    tmp, wf = case
+    field = '[[field.components]]\nkind = "isrf"\nU = 1.0\n'
+    wf.write_text(wf.read_text().replace('directory = "out"', 'directory = "out"\nn_keep = 50') + "\n" + field
+                  + "\n[population]\nenabled = true\nn_steps = 300\nn_walkers = 16\nequilibrium_scatter = 0.1\n")
+    assert main(["run", str(wf), "--quiet"]) == 0
+    pop = Table.read(tmp / "out" / "population.ecsv")
+    names = list(pop["parameter"])
+    assert names[5:] == ["fraction", "heated_mean", "heated_sd"]  # the heated-fraction mixture's rows
+    row = pop[names.index("fraction")]
+    assert 0.0 <= row["p2_5"] <= row["median"] <= row["p97_5"] <= 1.0  # a fraction with its interval
+    sources = Table.read(tmp / "out" / "population_sources.ecsv")
+    assert "p_heated" in sources.colnames and len(sources) == 10

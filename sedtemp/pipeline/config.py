@@ -99,8 +99,10 @@ named here.
     ``[output] n_keep`` > 0), ``model`` ("gaussian" | "mixture"),
     ``n_walkers`` (32), ``n_steps`` (2000), ``min_ess`` (10: importance-weight
     ESS below which a source is flagged), ``equilibrium_scatter`` (optional:
-    the log-scatter of T_fit / T_eq in equilibrium; given, the heated fraction
-    is inferred too). See :mod:`sedtemp.population`.
+    the log-scatter of T_fit / T_eq in equilibrium; given, the comparison
+    keeps its per-draw T_fit / T_eq as ``draws_ratio`` and the heated
+    fraction is inferred too: rows ``fraction``, ``heated_mean``,
+    ``heated_sd`` of population.ecsv). See :mod:`sedtemp.population`.
 
 Keys that do not change results (and all of ``[population]``): ``[run] workers``, ``executor``,
 ``chunk_size``, ``scheduler`` and ``[output] directory``, ``name``,

@@ -132,6 +132,8 @@ def _families() -> dict:
         out[f"{p}_rhat"] = ColumnSpec(f"{p}_rhat", "", "f", f"{text}: rank-normalised split R-hat "
                                       "(Vehtari et al. 2021; MCMC; NaN for grid)", ".4f", None, 2)
         out[DRAW_PREFIX + p] = ColumnSpec(DRAW_PREFIX + p, unit, "f", f"{text}: posterior draws", fmt, ucd, 7)
+    out[DRAW_PREFIX + "ratio"] = ColumnSpec(DRAW_PREFIX + "ratio", "", "f", "T_fit / T_eq per posterior draw "
+                                            "(kept for the population's heated fraction)", ".4f", None, 7)
     for q, (unit, text, ucd, fmt) in _COMPARE.items():
         for k, stat in _STAT_TEXT.items():
             out[f"{q}_{k}"] = ColumnSpec(f"{q}_{k}", unit, "f", f"{text}: posterior {stat}", fmt, ucd, 4)

@@ -317,7 +317,13 @@ def _field_uncertainty(wf: Workflow):
     return float(f["uncertainty"])
 
 
-def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity):
+def _wants_ratio_draws(wf: Workflow) -> bool:
+    """Per-draw T_fit / T_eq are kept for the population stage's heated fraction."""
+    pop = wf.population
+    return bool(pop.get("enabled")) and pop.get("equilibrium_scatter") is not None
+
+
+def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity, keep_draws=False):
     from ..compare import compare_chunk
 
     f = wf.field
@@ -328,7 +334,7 @@ def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity):
                          opacity_uncertainty=float(wf.compare["opacity_uncertainty"]),
                          projected=f["projected"], thresholds=wf.compare["thresholds"] or None,
                          fit_flags=None if fit_flags is None else [fit_flags[i] for i in idx],
-                         seeds=seeds, run_seed=wf.run["seed"])
+                         seeds=seeds, run_seed=wf.run["seed"], keep_draws=keep_draws)
 
 
 def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, mass_draws=None,
@@ -400,7 +406,8 @@ def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_f
         # a warning of the comparison is also a column or flag of its row
         warnings.simplefilter("ignore", SedtempWarning)
         try:
-            cols = _compare_group(wf, mapped, group, T, beta, mass, fit_flags, fields, opacity)
+            cols = _compare_group(wf, mapped, group, T, beta, mass, fit_flags, fields, opacity,
+                                  keep_draws=_wants_ratio_draws(wf))
         except Exception as err:  # noqa: BLE001 - retried per source below
             if len(group) == 1:
                 err.add_note(f"while comparing source {mapped.keys[group[0]]!r}")
@@ -410,8 +417,12 @@ def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_f
                 _compare_groups(wf, mapped, group[j:j + 1], m, T_draws, beta_draws, mass_draws, fit_flags,
                                 field_of, opacity, default_beta, rows, failures)
             return
+    ratio = cols.pop("draws_ratio", None)
+    cols.pop("draws_T_eq", None)
     for j, i in enumerate(group):
         rows[i] = {k: v[j] for k, v in cols.items()}
+        if ratio is not None:  # per-draw T_fit / T_eq, for the population's heated fraction
+            rows[i]["_ratio_draws"] = ratio[j]
 
 
 def column_rows(columns: dict, n: int) -> list[dict]:
@@ -462,5 +473,10 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
         cols, failures = compare_stage(wf, mapped, arrays["T"], arrays["beta"], mass_draws=arrays["log10_mass"],
                                        fit_flags=[r.get("flags", "") for r in fit.rows], active=active)
         _apply(failures, fit.status, fit.reason)
+        ratio = cols.pop("_ratio_draws", None)
+        if ratio is not None:  # kept beside the fit's draws: the draws_ratio column
+            for i, r in enumerate(ratio):
+                if r is not None and fit.draws[i] is not None:
+                    fit.draws[i] = {**fit.draws[i], "ratio": np.asarray(r, float)}
         parts.append(column_rows(cols, len(mapped)))
     return assemble(mapped, parts, fit.status, fit.reason, draws=fit.draws, n_keep=n_keep, workflow=wf)
