@@ -240,19 +240,27 @@ def prediction_beta(wf: Workflow, fit_rows) -> np.ndarray:
     return np.where(np.isfinite(beta), beta, default)
 
 
-def _fields_of(mapped, idx, failures, stage):
-    """Per-source fields of the sources ``idx``; a source whose field cannot be built fails alone."""
+def _fields_of(mapped, idx, failures, stage, cache=None):
+    """Per-source fields of the sources ``idx``; a source whose field cannot be built fails alone.
+
+    ``cache`` (index -> field) lets the predict and compare stages of one chunk
+    build each source's field once.
+    """
+    cache = {} if cache is None else cache
     fields, ok = [], []
     for i in idx:
         try:
-            fields.append(source_field(mapped, i))
+            if i not in cache:
+                cache[i] = source_field(mapped, i)
+            fields.append(cache[i])
             ok.append(i)
         except Exception as err:  # noqa: BLE001 - recorded per source
             failures[i] = f"{stage}: {type(err).__name__}: {err}"
     return fields, np.asarray(ok, dtype=int)
 
 
-def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active: np.ndarray):
+def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active: np.ndarray, *,
+                  fields: dict | None = None):
     """T_eq (K) of each active source's field at its ``beta``: one chunk call.
 
     Returns
@@ -261,6 +269,9 @@ def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active:
         ``T_eq_point`` (K), ``beta_for_T_eq`` and ``opacity_extrapolated_fraction``;
         NaN where not active or failed.
     failures : dict of int -> str
+
+    ``fields`` (keyword-only): a per-chunk cache of the sources' fields
+    (index -> field), filled here and reused by :func:`compare_stage`.
     """
     from ..equilibrium import predict_chunk
 
@@ -268,7 +279,7 @@ def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active:
     cols = {"T_eq_point": np.full(n, np.nan), "beta_for_T_eq": np.full(n, np.nan),
             "opacity_extrapolated_fraction": np.full(n, np.nan)}
     failures: dict = {}
-    fields, idx = _fields_of(mapped, np.flatnonzero(active), failures, "predict")
+    built, idx = _fields_of(mapped, np.flatnonzero(active), failures, "predict", fields)
     if idx.size == 0:
         return cols, failures
     opacity = wf.opacity()
@@ -277,7 +288,7 @@ def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active:
             # the fraction is a column (and the 'opacity_extrapolated' fit flag in
             # the comparison); one warning per chunk would only repeat it
             warnings.simplefilter("ignore", SedtempWarning)
-            res = predict_chunk(fields, opacity, beta[idx], details=True)
+            res = predict_chunk(built, opacity, beta[idx], details=True)
     except Exception as err:  # noqa: BLE001 - the whole chunk failed: record it per source
         for i in idx:
             failures[i] = f"predict: {type(err).__name__}: {err}"
@@ -338,7 +349,7 @@ def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity, k
 
 
 def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, mass_draws=None,
-                  fit_flags=None, active=None):
+                  fit_flags=None, active=None, fields=None):
     """The comparison of every active source's draws, one chunk call per draw count.
 
     Parameters
@@ -351,6 +362,9 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, m
     fit_flags : sequence of str, optional, keyword-only
         Each source's fit flags (prior-limited fits become ``unconstrained``).
     active : ndarray of bool (n,), optional, keyword-only
+    fields : dict, optional, keyword-only
+        Per-chunk cache of the sources' fields (index -> field), e.g. the
+        one :func:`predict_stage` filled.
 
     Returns
     -------
@@ -371,8 +385,8 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, m
     n = len(mapped)
     active = np.ones(n, bool) if active is None else active
     failures: dict = {}
-    fields, idx = _fields_of(mapped, np.flatnonzero(active), failures, "compare")
-    field_of = dict(zip(idx.tolist(), fields, strict=True))
+    built, idx = _fields_of(mapped, np.flatnonzero(active), failures, "compare", fields)
+    field_of = dict(zip(idx.tolist(), built, strict=True))
     opacity = wf.opacity()
     default_beta = _default_beta(wf)
     counts = np.isfinite(T_draws).sum(axis=1) if idx.size else np.zeros(n, int)
@@ -463,15 +477,17 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
     fit = fit_stage(wf, mapped)
     parts = [fit.rows]
     ok = fit.status == STATUS_OK
+    fields: dict = {}  # each source's field, built once for both stages
     if "predict" in stages and has_field:
-        cols, failures = predict_stage(wf, mapped, prediction_beta(wf, fit.rows), ok)
+        cols, failures = predict_stage(wf, mapped, prediction_beta(wf, fit.rows), ok, fields=fields)
         _apply(failures, fit.status, fit.reason)
         parts.append(column_rows(cols, len(mapped)))
     if "compare" in stages and has_field and wf.compare["enabled"]:
         arrays = draws_arrays(fit.draws, wf.fit["n_draws"])
         active = (fit.status == STATUS_OK) & np.array([d is not None for d in fit.draws], bool)
         cols, failures = compare_stage(wf, mapped, arrays["T"], arrays["beta"], mass_draws=arrays["log10_mass"],
-                                       fit_flags=[r.get("flags", "") for r in fit.rows], active=active)
+                                       fit_flags=[r.get("flags", "") for r in fit.rows], active=active,
+                                       fields=fields)
         _apply(failures, fit.status, fit.reason)
         ratio = cols.pop("_ratio_draws", None)
         if ratio is not None:  # kept beside the fit's draws: the draws_ratio column
