@@ -98,17 +98,71 @@ def _beta_nodes(b):
     return "lagrange", BETA_NODE_STEP * np.arange(k_lo, k_hi + 1), k_lo
 
 
+#: Per-process caches of the opacity rows 4 pi kappa_nu(beta) w_nu on a frequency
+#: grid (one row per beta node) and of unit spectra on a grid: both depend on
+#: the opacity, grid and field only, so every chunk of a run reuses them.
+_KW_CACHE: dict = {}
+_J_CACHE: dict = {}
+_KW_MATRICES: dict = {}
+_KW_MAX_ROWS = 4096  # ~130 MB of rows on the default grid at most
+_J_MAX = 256
+
+
+def _grid_key(nu):
+    return (nu.size, float(nu[0]), float(nu[-1]), hash(nu.tobytes()))
+
+
+def _kappa_rows(opacity, nodes, nu, w):
+    """4 pi kappa_nu(beta) w_nu (n_nodes, n_nu), rows computed once per (opacity, grid, beta) and process."""
+    okey = opacity.cache_key() if hasattr(opacity, "cache_key") else ("object",)
+    if okey[0] == "object":  # keyed by identity: an id can be reused after the object is freed
+        return 4 * np.pi * opacity.kappa_si(nu[None, :], nodes[:, None]) * w
+    key = (okey, _grid_key(nu))
+    mkey = (*key, nodes.tobytes())
+    mat = _KW_MATRICES.get(mkey)
+    if mat is not None:  # the same node set as an earlier chunk: the stacked rows as they were
+        return mat
+    rows = _KW_CACHE.setdefault(key, {})
+    missing = [b for b in nodes.tolist() if b not in rows]
+    if missing:
+        if sum(len(r) for r in _KW_CACHE.values()) + len(missing) > _KW_MAX_ROWS:
+            _KW_CACHE.clear()
+            rows = _KW_CACHE.setdefault(key, {})
+            missing = nodes.tolist()
+        mb = np.asarray(missing, float)
+        new = 4 * np.pi * opacity.kappa_si(nu[None, :], mb[:, None]) * w
+        rows.update(zip(missing, new, strict=True))
+    mat = np.stack([rows[b] for b in nodes.tolist()])
+    if len(_KW_MATRICES) >= 16:
+        _KW_MATRICES.pop(next(iter(_KW_MATRICES)))
+    _KW_MATRICES[mkey] = mat
+    return mat
+
+
+def _unit_spectrum(unit, key, nu):
+    """J_nu of a unit spectrum on the grid (SI), cached per (spectrum key, grid) and process."""
+    if key[0] == "object":  # keyed by identity (see _kappa_rows)
+        return np.asarray(unit.mean_intensity_si(nu), float)
+    ck = (key, _grid_key(nu))
+    j = _J_CACHE.get(ck)
+    if j is None:
+        if len(_J_CACHE) >= _J_MAX:
+            _J_CACHE.clear()
+        j = _J_CACHE[ck] = np.asarray(unit.mean_intensity_si(nu), float)
+    return j
+
+
 def _unit_table(terms, opacity, nodes, nu, w, nu_extrap):
     """Unit powers on the beta nodes: (table (n_nodes, n_cols), column of each term, extrap table or None)."""
-    kw = 4 * np.pi * opacity.kappa_si(nu[None, :], nodes[:, None]) * w  # (n_nodes, n_nu)
+    kw = _kappa_rows(opacity, nodes, nu, w)  # (n_nodes, n_nu)
     groups: dict = {}
     for t in terms:
         ckey = None if t.curve is None else t.curve.key
-        g = groups.setdefault((t.key, ckey), {"unit": t.unit, "curve": t.curve, "av": {}})
+        g = groups.setdefault((t.key, ckey), {"unit": t.unit, "key": t.key, "curve": t.curve, "av": {}})
         g["av"].setdefault(t.A_V, len(g["av"]))
     blocks, offset, start = [], 0, {}
     for gk, g in groups.items():
-        j = np.asarray(g["unit"].mean_intensity_si(nu), float)
+        j = _unit_spectrum(g["unit"], g["key"], nu)
         av = np.fromiter(g["av"], float, len(g["av"]))
         if g["curve"] is None:
             cols = np.broadcast_to(j[:, None], (nu.size, av.size))

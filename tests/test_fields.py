@@ -50,3 +50,21 @@ def test_chunk_absorbed_power_equals_one_field_at_a_time():
     nu, w = frequency_grid()
     direct = 4 * np.pi * np.sum(w * KAP.kappa_si(nu, 1.8) * fields[1].mean_intensity_si(nu))
     assert many[1, 0].sum() == pytest.approx(direct, rel=1e-12)
+
+
+def test_cached_opacity_rows_and_spectra_give_the_uncached_result():
+    # exact behaviour: the per-process caches of kappa rows and unit spectra change no number
+    import sedtemp.absorption as absorption
+
+    rng = np.random.default_rng(3)
+    fields = [build_field([{"kind": "isrf", "U": float(U)}, {"kind": "cmb"}], A_V=float(av))
+              for U, av in zip(rng.uniform(0.5, 5, 20), rng.uniform(0, 3, 20), strict=True)]
+    beta = rng.uniform(1.2, 2.4, (20, 30))  # > 16 distinct betas: Lagrange nodes
+    absorption._KW_CACHE.clear(), absorption._KW_MATRICES.clear(), absorption._J_CACHE.clear()
+    cold = absorbed_power_chunk(fields, KAP, beta)
+    assert absorption._KW_CACHE and absorption._J_CACHE
+    warm = absorbed_power_chunk(fields, KAP, beta)
+    absorption._KW_MATRICES.clear()
+    rows_only = absorbed_power_chunk(fields, KAP, beta)
+    np.testing.assert_array_equal(warm, cold)
+    np.testing.assert_array_equal(rows_only, cold)

@@ -326,6 +326,10 @@ def lookup_model(name):
                       f"entry-point group '{MODEL_GROUP}'")
 
 
+#: Opacities parsed from ``[model] opacity`` specs, per process (asked for once per chunk).
+_OPACITIES: dict = {}
+
+
 @dataclass
 class Workflow:
     """A validated workflow: plain sections (dicts with defaults filled) and their builders.
@@ -467,9 +471,18 @@ class Workflow:
             raise ConfigError(f"{self.source}: [model]: {err}") from err
 
     def _opacity(self):
+        spec = dict(self.model["opacity"])
+        key = repr(sorted(spec.items()))  # the opacity depends on the spec alone (opacities are immutable)
+        found = _OPACITIES.get(key)
+        if found is None:
+            if len(_OPACITIES) > 64:
+                _OPACITIES.clear()
+            found = _OPACITIES[key] = self._parse_opacity(spec)
+        return found
+
+    def _parse_opacity(self, spec):
         from ..opacity import PowerLawOpacity, SaturatedPowerLawOpacity
 
-        spec = dict(self.model["opacity"])
         known = {"kappa0", "nu0", "beta", "per", "grain_radius", "grain_density", "break_wavelength"}
         unknown = set(spec) - known
         if unknown or not {"kappa0", "nu0"} <= set(spec):
