@@ -24,6 +24,7 @@ depend on which other sources share its chunk or worker.
 from __future__ import annotations
 
 import logging
+import time
 import warnings
 from dataclasses import dataclass, field
 
@@ -449,6 +450,11 @@ def _apply(failures, status, reason):
         status[i], reason[i] = STATUS_FAILED, why
 
 
+#: Seconds spent in each stage of :func:`process_chunk` in this process since
+#: import (wall clock; read by benchmarks/run.py for the share of each stage).
+STAGE_SECONDS: dict = {"fit": 0.0, "predict": 0.0, "compare": 0.0, "assemble": 0.0}
+
+
 def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predict", "compare"),
                   n_keep=None):
     """Run the stages on every source of a (sub-)catalogue; one row per source (a Table).
@@ -474,7 +480,10 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
     """
     n_keep = wf.output["n_keep"] if n_keep is None else n_keep
     has_field = bool(wf.field["components"])
+    t0 = time.perf_counter()
     fit = fit_stage(wf, mapped)
+    t1 = time.perf_counter()
+    STAGE_SECONDS["fit"] += t1 - t0
     parts = [fit.rows]
     ok = fit.status == STATUS_OK
     fields: dict = {}  # each source's field, built once for both stages
@@ -482,6 +491,8 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
         cols, failures = predict_stage(wf, mapped, prediction_beta(wf, fit.rows), ok, fields=fields)
         _apply(failures, fit.status, fit.reason)
         parts.append(column_rows(cols, len(mapped)))
+    t2 = time.perf_counter()
+    STAGE_SECONDS["predict"] += t2 - t1
     if "compare" in stages and has_field and wf.compare["enabled"]:
         arrays = draws_arrays(fit.draws, wf.fit["n_draws"])
         active = (fit.status == STATUS_OK) & np.array([d is not None for d in fit.draws], bool)
@@ -495,4 +506,8 @@ def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predic
                 if r is not None and fit.draws[i] is not None:
                     fit.draws[i] = {**fit.draws[i], "ratio": np.asarray(r, float)}
         parts.append(column_rows(cols, len(mapped)))
-    return assemble(mapped, parts, fit.status, fit.reason, draws=fit.draws, n_keep=n_keep, workflow=wf)
+    t3 = time.perf_counter()
+    STAGE_SECONDS["compare"] += t3 - t2
+    out = assemble(mapped, parts, fit.status, fit.reason, draws=fit.draws, n_keep=n_keep, workflow=wf)
+    STAGE_SECONDS["assemble"] += time.perf_counter() - t3
+    return out
