@@ -54,7 +54,7 @@ def test_chunk_absorbed_power_equals_one_field_at_a_time():
 
 def test_cached_opacity_rows_and_spectra_give_the_uncached_result():
     # exact behaviour: the per-process caches of kappa rows and unit spectra change no number
-    import sedtemp.absorption as absorption
+    from sedtemp import absorption
 
     rng = np.random.default_rng(3)
     fields = [build_field([{"kind": "isrf", "U": float(U)}, {"kind": "cmb"}], A_V=float(av))
