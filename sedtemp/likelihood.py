@@ -113,7 +113,7 @@ def calibrated_chi2(resid, model, ivar, masks, d2):
     wr = resid * ivar
     chi2 = np.sum(resid * wr, axis=-1)
     logdet = np.zeros_like(chi2)
-    for mask, dg in zip(masks, d2):  # loop over a few calibration groups
+    for mask, dg in zip(masks, d2, strict=True):  # loop over a few calibration groups
         a = np.sum(model * model * ivar * mask, axis=-1)
         b = np.sum(model * wr * mask, axis=-1)
         den = 1.0 + dg * a

@@ -72,7 +72,7 @@ def _mmp83_si(nu_hz):
     with np.errstate(divide="ignore"):
         lam_um = C_LIGHT / nu * 1e6
     j = np.zeros(np.broadcast(nu).shape)
-    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:]):
+    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:], strict=True):
         inside = (lam_um >= lo) & (lam_um < hi)
         # 4 pi J_lambda -> J_nu = J_lambda lambda^2 / c (lambda in m)
         jl = np.where(inside, c * np.where(inside, lam_um, 1.0) ** p, 0.0) * _MMP_UV_TO_SI / (4 * np.pi)
@@ -86,7 +86,7 @@ def _mmp83_si(nu_hz):
 def _mmp83_uv_flux_si(lam_lo_um, lam_hi_um):
     """Exact 4 pi int J dnu (W m^-2) of the MMP83 UV power laws between two wavelengths (um)."""
     total = 0.0
-    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:]):
+    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:], strict=True):
         a, b = max(lo, lam_lo_um), min(hi, lam_hi_um)
         if b > a:
             total += c / (p + 1.0) * (b ** (p + 1.0) - a ** (p + 1.0))

@@ -50,7 +50,8 @@ def _draws_of_row(draws, table, i, key):
             return f"no posterior draws for id {key!r}"
         d = draws[key]
         if isinstance(d, (tuple, list)):
-            d = dict(zip(("T", "beta", "mass"), d))
+            # strict=False: the mass is optional, (T, beta) pairs with the first two names
+            d = dict(zip(("T", "beta", "mass"), d, strict=False))
     T = d["T"]
     keep = np.isfinite(np.asarray(u.Quantity(T).value if isinstance(T, u.Quantity) else T, float))
     if not keep.any():

@@ -54,7 +54,8 @@ def _text_columns(header, data_rows):
     names = [h.strip() for h in header]
     keep = set()
     for row in csv.reader(data_rows):
-        for name, cell in zip(names, row):
+        # strict=False: a ragged row is the CSV reader's to report; here only its cells count
+        for name, cell in zip(names, row, strict=False):
             if name not in keep and _LEADING_ZERO.match(cell):
                 keep.add(name)
     return {name: [ascii.convert_numpy(str)] for name in keep}
@@ -71,7 +72,8 @@ def _read_csv_with_units(path: Path) -> Table:
     if not body:  # a header alone: an empty catalogue with these columns
         return Table(names=[h.strip() for h in rows[0]] if rows else [], dtype=[float] * len(rows[0] if rows else []))
     tab = Table.read([data[0], *body], format="ascii.csv", converters=converters)
-    for name, unit in zip(rows[0], units or []):
+    # strict=False: without a units row there is nothing to pair (units or [] is empty)
+    for name, unit in zip(rows[0], units or [], strict=False):
         if unit is not None and name.strip() in tab.colnames:
             tab[name.strip()].unit = unit
     return tab
