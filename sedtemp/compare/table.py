@@ -13,7 +13,7 @@ from ..fit.summary import QUANTILES
 from ..radiation import RadiationField
 from ..seeds import source_seed
 from .chunk import column_names
-from .core import compare_draws
+from .core import CLASS_COLUMN, api_columns, compare_draws
 from .thresholds import Thresholds
 
 __all__ = ["compare_table", "row_seed"]
@@ -123,8 +123,8 @@ def compare_table(table: Table, field, opacity, *, draws=None, id_column="id", f
         A copy of ``table`` with the columns of :meth:`Comparison.columns`
         (``T_eq_*`` in K, ``extra_power_*`` in W/kg, ``extra_power_solar_*``
         in L_sun/M_sun, ``extra_luminosity_*`` in L_sun). A row without draws,
-        or whose own inputs are invalid, gets NaN, an empty ``flag`` and a
-        verdict "not compared: <reason>".
+        or whose own inputs are invalid, gets NaN, an empty ``heating_class``
+        and a verdict "not compared: <reason>".
 
     Raises
     ------
@@ -171,11 +171,11 @@ def compare_table(table: Table, field, opacity, *, draws=None, id_column="id", f
 
 def _with_columns(table, rows, reasons):
     out = Table(table, copy=True)
-    names = column_names() if not rows else list(next(iter(rows.values())))
+    names = list(api_columns(dict.fromkeys(column_names()))) if not rows else list(next(iter(rows.values())))
     for name in names:
         vals = [rows[i][name] if i in rows else None for i in range(len(table))]
-        if name in ("flag", "verdict"):
-            col = np.array([v if v is not None else ("" if name == "flag" else f"not compared: {reasons[i]}")
+        if name in (CLASS_COLUMN, "verdict"):
+            col = np.array([v if v is not None else ("" if name == CLASS_COLUMN else f"not compared: {reasons[i]}")
                             for i, v in enumerate(vals)], dtype=str)
         elif name == "T_eq_is_upper_bound":
             col = np.array([bool(v) for v in vals])
