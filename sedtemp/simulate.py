@@ -14,10 +14,19 @@ errors per band, e.g. one fixed error per band for a whole population).
 from __future__ import annotations
 
 from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .errors import InputError
+
+if TYPE_CHECKING:
+    from .bands import BandSet
+
+# model: an SEDModel, calibration: a mapping or a Calibration (inference-layer types, so Any here)
+#: What ``seed=`` accepts (None means 0).
+SeedLike = int | np.random.SeedSequence | np.random.Generator | None
 
 __all__ = ["JY_SI", "simulate_photometry"]
 
@@ -25,8 +34,11 @@ __all__ = ["JY_SI", "simulate_photometry"]
 JY_SI = 1e-26
 
 
-def simulate_photometry(bands, model, theta, *, snr=None, depth=None, sigma=None, calibration=None, seed=None,
-                        unit_si=JY_SI):
+def simulate_photometry(bands: BandSet, model: Any, theta: ArrayLike, *, snr: ArrayLike | None = None,
+                        depth: ArrayLike | None = None, sigma: ArrayLike | None = None,
+                        calibration: Any = None,
+                        seed: SeedLike = None, unit_si: float = JY_SI
+                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Noisy band fluxes of ``model`` at parameters ``theta``.
 
     Parameters
