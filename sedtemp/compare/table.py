@@ -31,7 +31,7 @@ def _quantity_of(name):
     return name
 
 
-def row_seed(seed, key) -> np.random.SeedSequence:
+def row_seed(seed: int | None, key: object) -> np.random.SeedSequence:
     """Seed of one row's comparison: :func:`sedtemp.seeds.source_seed` ``(seed, key)``, the rule of
     the grid fitter and the pipeline alike (``seed=None`` means 0)."""
     return source_seed(seed, key)

@@ -79,7 +79,7 @@ def _read_csv_with_units(path: Path) -> Table:
     return tab
 
 
-def read_catalog(path, *, format=None) -> Table:
+def read_catalog(path: str | Path, *, format: str | None = None) -> Table:
     """Read a catalogue file with astropy.
 
     Parameters
@@ -151,7 +151,7 @@ def _write_fits(table, tmp):
         out.write(tmp, format="fits", overwrite=True)
 
 
-def write_table(table: Table, path, *, format="ecsv") -> Path:
+def write_table(table: Table, path: str | Path, *, format: str = "ecsv") -> Path:
     """Write ``table`` atomically (temporary file in the same folder, then rename).
 
     ECSV and FITS keep every unit, description and the metadata; CSV and
