@@ -371,7 +371,7 @@ class Band:
     def tophat(
         cls,
         name: str,
-        center,
+        center: u.Quantity | float,
         fractional_width: float,
         *,
         detector: str = "energy",
@@ -435,11 +435,11 @@ class Band:
     def from_file(
         cls,
         name: str,
-        path,
+        path: str | Path,
         *,
         detector: str = "energy",
         reference: str | float = "nu_fnu",
-        reference_wavelength=None,
+        reference_wavelength: u.Quantity | float | None = None,
         format: str | None = None,
     ) -> Band:
         """Read a response curve from a two-column table file.
@@ -650,7 +650,7 @@ class BandSet:
         self.nu_grid_hz = _readonly(grid)
         self.weights = _readonly(weights)
 
-    def band_fluxes(self, spectrum_on_grid):
+    def band_fluxes(self, spectrum_on_grid) -> np.ndarray:
         """Quoted band fluxes of spectra sampled on :attr:`nu_grid_hz`.
 
         Parameters

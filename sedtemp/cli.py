@@ -215,7 +215,7 @@ def _cmd_check(args) -> int:
     _say(args, f"{args.workflow}: workflow valid; catalogue {wf.catalog['path']!r}: {len(mapped)} "
                f"source(s), {len(mapped.band_names)} band(s), {n_skip} to be skipped "
                f"(checked in {time.perf_counter() - t0:.2f} s)")
-    for key, reason in zip(mapped.keys, mapped.skip_reason):
+    for key, reason in zip(mapped.keys, mapped.skip_reason, strict=True):
         if reason:
             _say(args, f"  skip {key}: {reason}")
     if not args.show:  # a cheap look at the field and opacity: does T_eq rest on an extrapolation?
@@ -329,7 +329,7 @@ def _truth_score(res, truth, idc):
 
     if "heating_class" not in res.colnames:
         return "no heating classes (compare stage not available)"
-    t = {str(k): str(c) for k, c in zip(truth[idc], truth["true_class"])}
+    t = {str(k): str(c) for k, c in zip(truth[idc], truth["true_class"], strict=True)}
     ok = [str(r["heating_class"]) == t.get(str(r[idc])) for r in res if r["status"] == "ok"]
     return f"heating class equal to the true class for {int(np.sum(ok))} of {len(ok)} fitted sources"
 

@@ -59,7 +59,7 @@ def _t_eq_lines(wf, mapped, max_sources):
         lines.append(r["caution"])
     if r["failed"]:
         lines.append(f"T_eq could not be computed for {len(r['failed'])} source(s):")
-        keys, causes = zip(*r["failed"])
+        keys, causes = zip(*r["failed"], strict=True)
         lines += [f"  - {x}" for x in group_causes(causes, keys)]
     return lines
 
@@ -107,8 +107,8 @@ def source_report(row, wf) -> str:
         q = {k: _value(row, f"{p}_{k}") for k in ("median", "p16", "p84", "p2_5", "p97_5") if f"{p}_{k}" in row.colnames}
         body.append((p, f"{q['median']:.4g}", f"[{q['p16']:.4g}, {q['p84']:.4g}]",
                      f"[{q['p2_5']:.4g}, {q['p97_5']:.4g}]" if "p2_5" in q else "-", _unit(row, f"{p}_median")))
-    widths = [max(len(x) for x in col) for col in zip(head, *body)]
-    out += ["  " + "  ".join(x.ljust(w) for x, w in zip(line, widths)).rstrip() for line in (head, *body)]
+    widths = [max(len(x) for x in col) for col in zip(head, *body, strict=True)]
+    out += ["  " + "  ".join(x.ljust(w) for x, w in zip(line, widths, strict=True)).rstrip() for line in (head, *body)]
     if "chi2_map" in row.colnames:
         out.append(f"chi2 = {_value(row, 'chi2_map'):.3g} for {int(_value(row, 'dof'))} dof "
                    f"(reduced {_value(row, 'chi2_reduced'):.3g}); posterior predictive p = {_value(row, 'ppp'):.3g}")

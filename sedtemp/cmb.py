@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._units import to_hz, to_kelvin
 from .constants import T_CMB0
@@ -45,12 +46,12 @@ def _emission_si(nu_rest_hz, t_dust_k, redshift, contrast):
     return b
 
 
-def cmb_temperature(redshift):
+def cmb_temperature(redshift: ArrayLike) -> u.Quantity:
     """CMB temperature T_CMB(z) = T_CMB0 (1 + z), as a Quantity in K."""
     return T_CMB0 * (1.0 + np.asarray(redshift, dtype=float)) * u.K
 
 
-def cmb_heated_temperature(temperature, beta, redshift):
+def cmb_heated_temperature(temperature: u.Quantity | ArrayLike, beta: ArrayLike, redshift: ArrayLike) -> u.Quantity:
     """Dust temperature at redshift z including heating by the CMB.
 
     Parameters
@@ -87,7 +88,7 @@ def cmb_heated_temperature(temperature, beta, redshift):
     return _cmb_heated_si(t, b, z) * u.K
 
 
-def cmb_contrast_factor(nu_rest, dust_temperature, redshift):
+def cmb_contrast_factor(nu_rest: u.Quantity | ArrayLike, dust_temperature: u.Quantity | ArrayLike, redshift: ArrayLike) -> np.ndarray:
     """Fraction of the dust emission observed against the CMB.
 
     Parameters

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import astropy.constants as const
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._units import to_kelvin, to_si
 from .absorption import frequency_grid
@@ -21,6 +22,7 @@ from .constants import DEFAULT_GAS_TO_DUST, DEFAULT_GRAIN_DENSITY, M_HYDROGEN
 from .emission import check_beta
 from .equilibrium import absorbed_power, emitted_power, temperature_for_power
 from .errors import InputError
+from .opacity import Opacity
 from .planck import H_PLANCK, K_BOLTZMANN
 from .radiation import RadiationField
 
@@ -123,19 +125,19 @@ class Grain:
         self.n_atoms = self.mass_kg / (spec["atom_mass"] * _AMU)
         self._modes = spec["modes"]
 
-    def heat_capacity_si(self, temperature):
+    def heat_capacity_si(self, temperature: u.Quantity | ArrayLike) -> np.ndarray:
         """C(T) in J K^-1 (bare temperatures in K)."""
         t = np.asarray(to_kelvin(temperature), float)
         c = sum(ci * _debye_f(t / th, n) for ci, n, th in self._modes)
         return max(self.n_atoms - 2.0, 0.0) * K_BOLTZMANN * c
 
-    def thermal_energy_si(self, temperature):
+    def thermal_energy_si(self, temperature: u.Quantity | ArrayLike) -> np.ndarray:
         """E(T) = int_0^T C dT' in J."""
         t = np.asarray(to_kelvin(temperature), float)
         e = sum(ci * _debye_energy(t, th, n) for ci, n, th in self._modes)
         return max(self.n_atoms - 2.0, 0.0) * K_BOLTZMANN * e
 
-    def dust_mass_si(self, opacity):
+    def dust_mass_si(self, opacity: Opacity) -> float:
         """Mass the opacity refers to, per grain (kg); needs ``per="dust"``."""
         if opacity.per != "dust":
             raise InputError("grain timescales need an opacity per dust mass (per='dust'); "
@@ -167,11 +169,11 @@ class GasDustMedium:
             raise InputError("GasDustMedium: density, mu and gas_to_dust must be positive")
         self.gas_density_si = self.n_si * self.mu * M_HYDROGEN
 
-    def thermal_energy_si(self, temperature):
+    def thermal_energy_si(self, temperature: u.Quantity | ArrayLike) -> np.ndarray:
         """3/2 n k T in J m^-3."""
         return 1.5 * self.n_si * K_BOLTZMANN * np.asarray(to_kelvin(temperature), float)
 
-    def dust_mass_si(self, opacity):
+    def dust_mass_si(self, opacity: Opacity) -> float:
         """Mass per m^3 that the opacity refers to (gas or dust), kg m^-3."""
         return self.gas_density_si if opacity.per == "gas" else self.gas_density_si / self.gas_to_dust
 
@@ -184,7 +186,9 @@ def _check_body(body):
         raise InputError(f"body must be a Grain or GasDustMedium, got {type(body).__name__}")
 
 
-def heating_timescale(field, opacity, body, *, scale=None, beta=None, nu_grid=None):
+def heating_timescale(field: RadiationField, opacity: Opacity, body: Grain | GasDustMedium, *,
+                      scale: ArrayLike | None = None, beta: ArrayLike | None = None,
+                      nu_grid: ArrayLike | None = None) -> u.Quantity:
     """Time to absorb the thermal energy held at T_eq: t_heat = E(T_eq) / P_abs, a Quantity in s.
 
     Parameters
@@ -206,7 +210,8 @@ def heating_timescale(field, opacity, body, *, scale=None, beta=None, nu_grid=No
         return body.thermal_energy_si(t_eq) / (p * body.dust_mass_si(opacity)) * u.s
 
 
-def cooling_timescale(temperature, opacity, body, *, beta=None):
+def cooling_timescale(temperature: u.Quantity | ArrayLike, opacity: Opacity, body: Grain | GasDustMedium, *,
+                      beta: ArrayLike | None = None) -> u.Quantity:
     """Radiative cooling time t_cool = E(T) / P_emit(T), a Quantity in s.
 
     Parameters
@@ -263,7 +268,9 @@ def _cumulative_from_top(field, opacity, b_uniq, nu, w):
     return np.cumsum(dp[:, ::-1], axis=1)[:, ::-1] / tot
 
 
-def stochastic_heating_check(field, opacity, grain, *, scale=None, beta=None, nu_grid=None):
+def stochastic_heating_check(field: RadiationField, opacity: Opacity, grain: Grain, *,
+                             scale: ArrayLike | None = None, beta: ArrayLike | None = None,
+                             nu_grid: ArrayLike | None = None) -> StochasticCheck:
     """Flag grains that are stochastically heated rather than in equilibrium.
 
     Parameters

@@ -112,8 +112,8 @@ def format_band_table(rows, catalog_units=None) -> str:
     head = ("band", "flux", "error", "limit", "unit", "centre", "calibration")
     body = [(r["band"], r["flux"], r["error"], r["limit"] or "-",
              catalog_units.get(r["flux"], r["unit"]), f"{r['centre_um']:.4g} um", r["calibration"]) for r in rows]
-    widths = [max(len(str(x)) for x in col) for col in zip(head, *body)]
-    return "\n".join("  ".join(str(x).ljust(w) for x, w in zip(line, widths)).rstrip() for line in (head, *body))
+    widths = [max(len(str(x)) for x in col) for col in zip(head, *body, strict=True)]
+    return "\n".join("  ".join(str(x).ljust(w) for x, w in zip(line, widths, strict=True)).rstrip() for line in (head, *body))
 
 
 # ---------------------------------------------------------- resolved physics

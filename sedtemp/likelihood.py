@@ -23,6 +23,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.special import log_ndtr
 
 from .errors import InputError
@@ -91,7 +92,8 @@ class Calibration:
         return f"Calibration({self.groups!r})"
 
 
-def calibrated_chi2(resid, model, ivar, masks, d2):
+def calibrated_chi2(resid: np.ndarray, model: np.ndarray, ivar: np.ndarray, masks: np.ndarray,
+                    d2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Woodbury chi^2 and log-det term of C = diag(1/ivar) + sum_g d2_g m_g m_g^T.
 
     Parameters
@@ -113,7 +115,7 @@ def calibrated_chi2(resid, model, ivar, masks, d2):
     wr = resid * ivar
     chi2 = np.sum(resid * wr, axis=-1)
     logdet = np.zeros_like(chi2)
-    for mask, dg in zip(masks, d2):  # loop over a few calibration groups
+    for mask, dg in zip(masks, d2, strict=True):  # loop over a few calibration groups
         a = np.sum(model * model * ivar * mask, axis=-1)
         b = np.sum(model * wr * mask, axis=-1)
         den = 1.0 + dg * a
@@ -171,12 +173,12 @@ class PhotometryLikelihood:
     def n_detected(self) -> int:
         return int(self.detected.sum())
 
-    def chi2_and_logdet(self, model_flux):
+    def chi2_and_logdet(self, model_flux: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
         """(r^T C^-1 r, ln det C - sum ln sigma^2) for model band fluxes (n, n_bands)."""
         m = np.atleast_2d(model_flux)[:, self.detected]
         return calibrated_chi2(self._f - m, m, self.ivar, self._mask.T, self._d2g)
 
-    def limit_term(self, model_flux):
+    def limit_term(self, model_flux: ArrayLike) -> np.ndarray:
         """sum over limit-only bands of log Phi((L - m) / sigma_L), shape (n,)."""
         if not self.limit_only.any():
             return np.zeros(np.atleast_2d(model_flux).shape[0])
@@ -188,7 +190,7 @@ class PhotometryLikelihood:
         chi2, logdet = self.chi2_and_logdet(model_flux)
         return self._const - 0.5 * (chi2 + logdet) + self.limit_term(model_flux)
 
-    def predictive_chi2(self, model_flux, rng):
+    def predictive_chi2(self, model_flux: ArrayLike, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
         """chi^2 of the data and of one replicated data set at each model, (n,), (n,).
 
         The posterior predictive p-value is the fraction of posterior draws
@@ -201,7 +203,7 @@ class PhotometryLikelihood:
         chi_rep = calibrated_chi2(rep - md, md, self.ivar, self._mask.T, self._d2g)[0]
         return chi_obs, chi_rep
 
-    def simulate(self, model_flux, rng):
+    def simulate(self, model_flux: ArrayLike, rng: np.random.Generator) -> np.ndarray:
         """Replicated data sets drawn from the likelihood at each model, shape (n, n_bands).
 
         Detected bands get Gaussian noise plus one shared calibration factor

@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._units import to_hz, to_si
 from .cmb import (
@@ -92,7 +93,7 @@ _THICK_TAU_RANGE = (-6.0, 3.0)
 _DEFAULT_GRAIN_RADIUS_UM = 0.1
 
 
-def default_opacity(per="dust"):
+def default_opacity(per: str = "dust") -> SaturatedPowerLawOpacity:
     """The opacity used when a model is given ``opacity=None``.
 
     Parameters
@@ -196,11 +197,11 @@ class SEDModel:
     def _col(self, th, name):
         return th[:, self.param_names.index(name)][:, None]
 
-    def sed_si(self, nu_obs_hz, theta):  # pragma: no cover - abstract
+    def sed_si(self, nu_obs_hz: ArrayLike, theta: ArrayLike) -> np.ndarray:  # pragma: no cover - abstract
         """Observed flux density (n, n_nu) in W m^-2 Hz^-1."""
         raise NotImplementedError
 
-    def valid(self, theta):
+    def valid(self, theta: ArrayLike) -> np.ndarray:
         """True where a parameter vector is physical (finite, T > 0, ...); shape (n,)."""
         th = self._theta(theta)
         return np.all(np.isfinite(th), axis=1) & self._valid_extra(th)
@@ -208,7 +209,7 @@ class SEDModel:
     def _valid_extra(self, th):
         return np.ones(th.shape[0], dtype=bool)
 
-    def sed(self, nu, theta):
+    def sed(self, nu: u.Quantity | ArrayLike, theta: ArrayLike) -> u.Quantity:
         """Observed flux density as a Quantity in Jy.
 
         Parameters
@@ -227,7 +228,7 @@ class SEDModel:
         nu_hz = np.atleast_1d(to_hz(nu, name="nu"))
         return (self.sed_si(nu_hz, theta) * _FLUX_SI).to(u.Jy)
 
-    def default_prior(self):  # pragma: no cover - abstract
+    def default_prior(self) -> Prior:  # pragma: no cover - abstract
         raise NotImplementedError
 
 
@@ -245,7 +246,7 @@ class _OneTemperature(SEDModel):
         t = self._col(th, "T")
         return _cmb_heated_si(t, self._beta_of(th), self.redshift) if self.cmb_heating else t
 
-    def dust_temperature(self, theta):
+    def dust_temperature(self, theta: ArrayLike) -> u.Quantity:
         """Dust temperature T_d(z) including CMB heating when it is on.
 
         Parameters
@@ -398,7 +399,7 @@ class ModifiedBlackbody(_OneTemperature):
 
         return float(Planck18.luminosity_distance(self.redshift).to_value(u.m))
 
-    def template_si(self, nu_obs_hz, theta):
+    def template_si(self, nu_obs_hz: ArrayLike, theta: ArrayLike) -> np.ndarray:
         """Observed flux density (n, n_nu) in W m^-2 Hz^-1 at amplitude 10**0.
 
         The amplitude column of ``theta`` is ignored.
@@ -412,12 +413,12 @@ class ModifiedBlackbody(_OneTemperature):
         emission = _emission_si(nu, self._t_dust_si(th), self.redshift, self.cmb_contrast)
         return self._scale * kappa * emission
 
-    def sed_si(self, nu_obs_hz, theta):
+    def sed_si(self, nu_obs_hz: ArrayLike, theta: ArrayLike) -> np.ndarray:
         """Observed flux density (n, n_nu) in W m^-2 Hz^-1 (see class Notes)."""
         th = self._theta(theta)
         return 10.0 ** self._col(th, self.amplitude_name) * self.template_si(nu_obs_hz, th)
 
-    def default_prior(self):
+    def default_prior(self) -> Prior:
         """Default priors, uniform in every parameter.
 
         - ``T``: Uniform(3, 150) K: from just above T_CMB0 to dust whose
@@ -508,7 +509,7 @@ class ThickModifiedBlackbody(_OneTemperature):
         units = {"log10_tau0": "", "T": "K", "beta": ""}
         self.param_units = {n: units[n] for n in self.param_names}
 
-    def optical_depth(self, nu_obs_hz, theta):
+    def optical_depth(self, nu_obs_hz: ArrayLike, theta: ArrayLike) -> np.ndarray:
         """tau at the rest frequency of each observed frequency, shape (n, n_nu)."""
         th = self._theta(theta)
         nu = np.asarray(nu_obs_hz, dtype=float) * (1.0 + self.redshift)
@@ -516,7 +517,7 @@ class ThickModifiedBlackbody(_OneTemperature):
         shape = self.opacity.kappa_si(nu, beta=beta) / self.opacity.kappa_si(self.nu0_hz, beta=beta)
         return 10.0 ** self._col(th, "log10_tau0") * shape
 
-    def sed_si(self, nu_obs_hz, theta):
+    def sed_si(self, nu_obs_hz: ArrayLike, theta: ArrayLike) -> np.ndarray:
         """Observed flux density (n, n_nu) in W m^-2 Hz^-1 (see class Notes)."""
         th = self._theta(theta)
         nu = np.asarray(nu_obs_hz, dtype=float) * (1.0 + self.redshift)
@@ -524,7 +525,7 @@ class ThickModifiedBlackbody(_OneTemperature):
         emission = _emission_si(nu, self._t_dust_si(th), self.redshift, self.cmb_contrast)
         return self._scale * emission * -np.expm1(-tau)
 
-    def default_prior(self):
+    def default_prior(self) -> Prior:
         """T Uniform(3, 150) K, beta Uniform(0, 4), log10_tau0 Uniform(-6, 3)."""
         priors = {"log10_tau0": Uniform(*_THICK_TAU_RANGE), "T": Uniform(*_T_RANGE)}
         if self.beta is None:
@@ -616,17 +617,17 @@ class TwoTemperatureModel(SEDModel):
             cols.append(self.param_names.index("beta"))
         return np.array(cols)
 
-    def split(self, theta):
+    def split(self, theta: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
         """theta (n, n_params) -> (theta_cold, theta_warm) in each component's order."""
         th = self._theta(theta)
         return th[:, self._idx["cold"]], th[:, self._idx["warm"]]
 
-    def sed_si(self, nu_obs_hz, theta):
+    def sed_si(self, nu_obs_hz: ArrayLike, theta: ArrayLike) -> np.ndarray:
         """Observed flux density (n, n_nu) in W m^-2 Hz^-1: cold + warm."""
         tc, tw = self.split(theta)
         return self.cold.sed_si(nu_obs_hz, tc) + self.warm.sed_si(nu_obs_hz, tw)
 
-    def valid(self, theta):
+    def valid(self, theta: ArrayLike) -> np.ndarray:
         """Both components valid and T_warm > T_cold; shape (n,)."""
         th = self._theta(theta)
         tc, tw = self.split(th)
@@ -634,7 +635,7 @@ class TwoTemperatureModel(SEDModel):
         t_warm = th[:, self.param_names.index("T_warm")]
         return self.cold.valid(tc) & self.warm.valid(tw) & (t_warm > t_cold)
 
-    def default_prior(self):
+    def default_prior(self) -> Prior:
         """The components' defaults for each amplitude and T (T_warm > T_cold via :meth:`valid`)."""
         pc, pw = self.cold.default_prior(), self.warm.default_prior()
         amp = self.cold.amplitude_name
@@ -656,7 +657,7 @@ MODELS = {
 }
 
 
-def get_model(name):
+def get_model(name: str) -> type[SEDModel]:
     """The model class registered under ``name`` (a key of :data:`MODELS`).
 
     Raises

@@ -12,6 +12,7 @@ import hashlib
 
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._units import read_two_columns, to_hz, to_si
 from .constants import DEFAULT_GAS_TO_DUST, DEFAULT_GRAIN_DENSITY
@@ -57,7 +58,7 @@ class Opacity:
     per: str = "dust"
     beta: float = 0.0
 
-    def kappa_si(self, nu_hz, beta=None):  # pragma: no cover - abstract
+    def kappa_si(self, nu_hz: ArrayLike, beta: ArrayLike | None = None) -> np.ndarray:  # pragma: no cover - abstract
         """kappa_nu in m^2 kg^-1 at ``nu_hz``; ``beta`` broadcasts against ``nu_hz``."""
         raise NotImplementedError
 
@@ -114,7 +115,7 @@ class PowerLawOpacity(Opacity):
         self.beta = float(beta)
         self.per = _check_per(per)
 
-    def kappa_si(self, nu_hz, beta=None):
+    def kappa_si(self, nu_hz: ArrayLike, beta: ArrayLike | None = None) -> np.ndarray:
         b = self.beta if beta is None else np.asarray(beta, dtype=float)
         return self.kappa0_si * (np.asarray(nu_hz, dtype=float) / self.nu0_hz) ** b
 
@@ -227,7 +228,7 @@ class TabulatedOpacity(Opacity):
         lk = np.where(lnu < self._lnu[0], self._lk[0] + s_lo * (lnu - self._lnu[0]), lk)
         return np.where(lnu > self._lnu[-1], self._lk[-1] + s_hi * (lnu - self._lnu[-1]), lk)
 
-    def kappa_si(self, nu_hz, beta=None):
+    def kappa_si(self, nu_hz: ArrayLike, beta: ArrayLike | None = None) -> np.ndarray:
         lnu = np.log(np.asarray(nu_hz, dtype=float))
         lk = self._table(lnu)
         if beta is not None:
@@ -341,13 +342,13 @@ class SaturatedPowerLawOpacity(Opacity):
                 raise InputError(f"break_wavelength must be positive, got {break_wavelength!r}")
             self.break_nu_hz = nub
 
-    def kappa_si(self, nu_hz, beta=None):
+    def kappa_si(self, nu_hz: ArrayLike, beta: ArrayLike | None = None) -> np.ndarray:
         nu = np.asarray(nu_hz, dtype=float)
         if self.break_nu_hz is not None:
             return self._law.kappa_si(np.minimum(nu, self.break_nu_hz), beta)
         return np.minimum(self._law.kappa_si(nu, beta), self._kappa_sat_si)
 
-    def saturation_si(self, beta=None):
+    def saturation_si(self, beta: ArrayLike | None = None) -> np.ndarray:
         """The cap kappa_sat in m^2 kg^-1 (an array if ``beta`` is, for ``break_wavelength``)."""
         if self.break_nu_hz is not None:
             return self._law.kappa_si(self.break_nu_hz, beta)

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._units import to_flux_si
 from .errors import InputError, SedtempWarning
@@ -87,7 +88,8 @@ def _to_si(value, what):
     return si, mask, bare
 
 
-def photometry_problems(flux, err, names, *, skip_missing=True):
+def photometry_problems(flux: np.ndarray, err: np.ndarray, names: Sequence[str], *,
+                        skip_missing: bool = True) -> list[tuple[str, np.ndarray]]:
     """Every problem of SI photometry arrays, as (message, mask over sources) pairs.
 
     Parameters
@@ -121,7 +123,8 @@ def photometry_problems(flux, err, names, *, skip_missing=True):
     return out
 
 
-def validate(flux, err, names, *, limit_only=None, skip_missing=True, source_label=None):
+def validate(flux: ArrayLike, err: ArrayLike, names: Sequence[str], *, limit_only: ArrayLike | None = None,
+             skip_missing: bool = True, source_label: Sequence[object] | None = None) -> Photometry:
     """SI arrays (n_sources, n_bands) -> :class:`Photometry`, raising on the first problem.
 
     Raises
@@ -146,8 +149,9 @@ def validate(flux, err, names, *, limit_only=None, skip_missing=True, source_lab
                       missing=missing, limit_only=lim & ~missing)
 
 
-def prepare(flux, flux_err, names: Sequence[str], *, upper_limits=None, skip_missing=True,
-            source_label=None) -> Photometry:
+def prepare(flux: u.Quantity | ArrayLike, flux_err: u.Quantity | ArrayLike, names: Sequence[str], *,
+            upper_limits: Sequence[str] | ArrayLike | None = None, skip_missing: bool = True,
+            source_label: Sequence[object] | None = None) -> Photometry:
     """Convert and check user photometry; return :class:`Photometry` with 2-D SI arrays.
 
     Parameters

@@ -10,6 +10,7 @@ from __future__ import annotations
 import astropy.constants as const
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.special import gamma, zeta
 
 from ._units import to_hz, to_kelvin
@@ -57,7 +58,7 @@ def _planck_nu_si(nu_hz, t_k):
     return np.where(np.isfinite(out), out, 0.0)
 
 
-def planck_nu(nu, temperature):
+def planck_nu(nu: u.Quantity | ArrayLike, temperature: u.Quantity | ArrayLike) -> u.Quantity:
     """Planck specific intensity B_nu(T).
 
     Parameters
@@ -90,7 +91,7 @@ def planck_nu(nu, temperature):
     return _planck_nu_si(nu_hz, t_k) * _INTENSITY_UNIT
 
 
-def planck_integral(temperature):
+def planck_integral(temperature: u.Quantity | ArrayLike) -> u.Quantity:
     """Frequency-integrated Planck intensity, int B_nu dnu = sigma T^4 / pi.
 
     Parameters
@@ -124,7 +125,7 @@ def _powerlaw_planck_integral_si(t_k, beta, nu0_hz):
     return _PREFACTOR * kt_h**s * np.asarray(nu0_hz, float) ** (-b) * gamma(s) * zeta(s)
 
 
-def powerlaw_planck_integral(temperature, beta, nu0):
+def powerlaw_planck_integral(temperature: u.Quantity | ArrayLike, beta: ArrayLike, nu0: u.Quantity | ArrayLike) -> u.Quantity:
     """Integral of a power law times the Planck function, int (nu/nu0)^beta B_nu(T) dnu.
 
     Parameters
@@ -152,7 +153,7 @@ def powerlaw_planck_integral(temperature, beta, nu0):
     ) * (u.W / u.m**2 / u.sr)
 
 
-def planck_mean_powerlaw(temperature, beta, nu0):
+def planck_mean_powerlaw(temperature: u.Quantity | ArrayLike, beta: ArrayLike, nu0: u.Quantity | ArrayLike) -> np.ndarray:
     """Planck mean of (nu/nu0)^beta: int (nu/nu0)^beta B_nu dnu / int B_nu dnu.
 
     Parameters
@@ -180,7 +181,7 @@ def planck_mean_powerlaw(temperature, beta, nu0):
     return _powerlaw_planck_integral_si(t_k, beta, nu0_hz) / (SIGMA_SB * t_k**4 / np.pi)
 
 
-def wien_peak_x(beta=0.0):
+def wien_peak_x(beta: float = 0.0) -> float:
     """x = h nu_peak / k T at the peak of nu^beta B_nu(T), from x = (3+beta)(1 - e^-x).
 
     Parameters

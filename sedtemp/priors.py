@@ -11,9 +11,10 @@ posterior-predictive checks built on them are well defined.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import special
 
 from .errors import InputError
@@ -25,10 +26,10 @@ class _Prior1D:
     low: float
     high: float
 
-    def logpdf(self, x):  # pragma: no cover - abstract
+    def logpdf(self, x: ArrayLike) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
 
-    def sample(self, rng, n):  # pragma: no cover - abstract
+    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:  # pragma: no cover - abstract
         raise NotImplementedError
 
     def _bounds_check(self, low, high, what):
@@ -55,12 +56,12 @@ class Uniform(_Prior1D):
         self.low, self.high = low, high
         self._logp = -np.log(high - low)
 
-    def logpdf(self, x):
+    def logpdf(self, x: ArrayLike) -> np.ndarray:
         x = np.asarray(x, dtype=float)
         inside = (x >= self.low) & (x <= self.high)
         return np.where(inside, self._logp, -np.inf)
 
-    def sample(self, rng, n):
+    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return rng.uniform(self.low, self.high, size=n)
 
     def __repr__(self):
@@ -78,14 +79,14 @@ class LogUniform(_Prior1D):
         self.low, self.high = low, high
         self._lognorm = np.log(np.log(high / low))
 
-    def logpdf(self, x):
+    def logpdf(self, x: ArrayLike) -> np.ndarray:
         x = np.asarray(x, dtype=float)
         inside = (x >= self.low) & (x <= self.high)
         with np.errstate(divide="ignore", invalid="ignore"):
             lp = -np.log(np.where(inside, x, 1.0)) - self._lognorm
         return np.where(inside, lp, -np.inf)
 
-    def sample(self, rng, n):
+    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return np.exp(rng.uniform(np.log(self.low), np.log(self.high), size=n))
 
     def __repr__(self):
@@ -106,13 +107,13 @@ class Gaussian(_Prior1D):
         self._a, self._b = a, b
         self._lognorm = -0.5 * np.log(2 * np.pi) - np.log(sigma) - np.log(mass)
 
-    def logpdf(self, x):
+    def logpdf(self, x: ArrayLike) -> np.ndarray:
         x = np.asarray(x, dtype=float)
         inside = (x >= self.low) & (x <= self.high)
         z = (x - self.mean) / self.sigma
         return np.where(inside, self._lognorm - 0.5 * z**2, -np.inf)
 
-    def sample(self, rng, n):
+    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         # inverse-CDF sampling of the truncated normal
         lo, hi = special.ndtr(self._a), special.ndtr(self._b)
         return self.mean + self.sigma * special.ndtri(rng.uniform(lo, hi, size=n))
@@ -141,12 +142,12 @@ class UniformAmplitude(_Prior1D):
         # log of the normaliser int_low^high 10^x dx = (10^high - 10^low) / ln 10
         self._lognorm = high * self._ln10 + np.log(-np.expm1((low - high) * self._ln10)) - np.log(self._ln10)
 
-    def logpdf(self, x):
+    def logpdf(self, x: ArrayLike) -> np.ndarray:
         x = np.asarray(x, dtype=float)
         inside = (x >= self.low) & (x <= self.high)
         return np.where(inside, x * self._ln10 - self._lognorm, -np.inf)
 
-    def sample(self, rng, n):
+    def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return np.log10(rng.uniform(10.0**self.low, 10.0**self.high, size=n))
 
     def __repr__(self):
@@ -215,13 +216,13 @@ class Prior(Mapping):
     def __len__(self):
         return len(self._priors)
 
-    def updated(self, other):
+    def updated(self, other: Mapping[str, _Prior1D]) -> Prior:
         """A new Prior with entries of ``other`` (mapping) replacing or adding to these."""
         merged = dict(self._priors)
         merged.update(dict(other))
         return Prior(merged)
 
-    def check_names(self, names):
+    def check_names(self, names: Sequence[str]) -> None:
         """Raise InputError unless every name has a prior and no prior is left unused."""
         missing = [n for n in names if n not in self._priors]
         extra = [n for n in self._priors if n not in names]
@@ -230,7 +231,7 @@ class Prior(Mapping):
         if extra:
             raise InputError(f"prior given for unknown parameter(s) {extra}; model parameters are {list(names)}")
 
-    def logpdf(self, theta, names):
+    def logpdf(self, theta: ArrayLike, names: Sequence[str]) -> np.ndarray:
         """Joint log prior density of ``theta`` (n, len(names)) -> (n,); -inf outside the support.
 
         The same name as the single priors' ``logpdf``; ``log_prob`` is an alias
@@ -244,11 +245,11 @@ class Prior(Mapping):
 
     log_prob = logpdf
 
-    def sample(self, rng, n, names):
+    def sample(self, rng: np.random.Generator, n: int, names: Sequence[str]) -> np.ndarray:
         """Draws of shape (n, len(names)) from the prior."""
         return np.column_stack([self._priors[name].sample(rng, n) for name in names])
 
-    def bounds(self, names):
+    def bounds(self, names: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """(low, high) arrays of the supports, in ``names`` order."""
         lo = np.array([self._priors[n].low for n in names])
         hi = np.array([self._priors[n].high for n in names])

@@ -17,6 +17,7 @@ from pathlib import Path
 import astropy.constants as const
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._units import read_two_columns, to_hz, to_kelvin, to_si
 from .constants import NU_LYMAN, T_CMB0
@@ -72,7 +73,7 @@ def _mmp83_si(nu_hz):
     with np.errstate(divide="ignore"):
         lam_um = C_LIGHT / nu * 1e6
     j = np.zeros(np.broadcast(nu).shape)
-    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:]):
+    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:], strict=True):
         inside = (lam_um >= lo) & (lam_um < hi)
         # 4 pi J_lambda -> J_nu = J_lambda lambda^2 / c (lambda in m)
         jl = np.where(inside, c * np.where(inside, lam_um, 1.0) ** p, 0.0) * _MMP_UV_TO_SI / (4 * np.pi)
@@ -86,7 +87,7 @@ def _mmp83_si(nu_hz):
 def _mmp83_uv_flux_si(lam_lo_um, lam_hi_um):
     """Exact 4 pi int J dnu (W m^-2) of the MMP83 UV power laws between two wavelengths (um)."""
     total = 0.0
-    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:]):
+    for (c, p), lo, hi in zip(_MMP_UV, _MMP_EDGES_UM[:-1], _MMP_EDGES_UM[1:], strict=True):
         a, b = max(lo, lam_lo_um), min(hi, lam_hi_um)
         if b > a:
             total += c / (p + 1.0) * (b ** (p + 1.0) - a ** (p + 1.0))
@@ -123,12 +124,12 @@ class RadiationField:
     of additive terms (``[self]`` for a single field).
     """
 
-    def mean_intensity_si(self, nu_hz):  # pragma: no cover - abstract
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:  # pragma: no cover - abstract
         """J_nu in W m^-2 Hz^-1 sr^-1 at ``nu_hz`` (Hz, any shape)."""
         raise NotImplementedError
 
     @property
-    def components(self):
+    def components(self) -> list[RadiationField]:
         """Additive terms of the field (a list; ``[self]`` unless this is a sum)."""
         return [self]
 
@@ -143,11 +144,11 @@ class RadiationField:
         """
         return ("object", id(self)), self, 1.0
 
-    def mean_intensity(self, nu):
+    def mean_intensity(self, nu: u.Quantity | ArrayLike) -> u.Quantity:
         """J_nu as a Quantity in W m^-2 Hz^-1 sr^-1 (``nu``: Quantity, or bare um)."""
         return self.mean_intensity_si(to_hz(nu, name="nu")) * _J_UNIT
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         """This field multiplied by ``factor`` (a non-negative number)."""
         return ScaledField(self, factor)
 
@@ -165,7 +166,7 @@ class RadiationField:
 
     __radd__ = __add__
 
-    def attenuated(self, A_V, *, law="G23", R_V=3.1):
+    def attenuated(self, A_V: float, *, law: str = "G23", R_V: float = 3.1) -> RadiationField:
         """This field seen behind ``A_V`` magnitudes of visual extinction.
 
         Parameters
@@ -244,10 +245,10 @@ class ISRF(RadiationField):
         if not (np.isfinite(self.U) and self.U >= 0):
             raise InputError(f"ISRF: U must be a finite number >= 0, got {U!r}")
 
-    def mean_intensity_si(self, nu_hz):
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
         return self.U * _mmp83_si(nu_hz)
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         return ISRF(self.U * _check_factor(factor))
 
     def unit_spectrum(self):
@@ -290,10 +291,10 @@ class Blackbody(RadiationField):
         if not (np.isfinite(self.dilution) and self.dilution >= 0):
             raise InputError(f"Blackbody: dilution must be a finite number >= 0, got {dilution!r}")
 
-    def mean_intensity_si(self, nu_hz):
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
         return self.dilution * _planck_nu_si(nu_hz, self.temperature_k)
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         return Blackbody(self.temperature_k, self.dilution * _check_factor(factor))
 
     def unit_spectrum(self):
@@ -364,7 +365,7 @@ class Star(Blackbody):
         self.luminosity_w = 4 * np.pi * r**2 * SIGMA_SB * t**4
         super().__init__(t, _dilution(r, d))
 
-    def dilution_at(self, distance):
+    def dilution_at(self, distance: u.Quantity | ArrayLike) -> np.ndarray:
         """Dilution factor at other separations (Quantity, or bare pc; array_like)."""
         d = to_si(distance, u.m, default_unit=u.pc, name="distance")
         if np.any(~(d > self.radius_m)):
@@ -447,11 +448,11 @@ class Tabulated(RadiationField):
             self._lj = np.maximum(np.log(self._j), -745.0)
 
     @classmethod
-    def from_file(cls, path):
+    def from_file(cls, path: str | Path) -> Tabulated:
         """Read a two-column table (ECSV or any astropy-readable format with units)."""
         return cls(path=path)
 
-    def mean_intensity_si(self, nu_hz):
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
         lnu = np.log(np.asarray(nu_hz, dtype=float))
         out = np.exp(np.interp(lnu, self._lnu, self._lj))
         inside = (lnu >= self._lnu[0]) & (lnu <= self._lnu[-1])
@@ -461,7 +462,7 @@ class Tabulated(RadiationField):
         h = hashlib.blake2b(self._lnu.tobytes() + self._j.tobytes(), digest_size=16).hexdigest()
         return ("table", h), self, 1.0
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         new = object.__new__(Tabulated)
         f = _check_factor(factor)
         new._lnu, new._j = self._lnu, self._j * f
@@ -491,10 +492,10 @@ class ScaledField(RadiationField):
         self.field = field
         self.factor = _check_factor(factor)
 
-    def mean_intensity_si(self, nu_hz):
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
         return self.factor * self.field.mean_intensity_si(nu_hz)
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         return ScaledField(self.field, self.factor * _check_factor(factor))
 
     def unit_spectrum(self):
@@ -519,16 +520,16 @@ class SumField(RadiationField):
         self._components = comps
 
     @property
-    def components(self):
+    def components(self) -> list[RadiationField]:
         return list(self._components)
 
-    def mean_intensity_si(self, nu_hz):
+    def mean_intensity_si(self, nu_hz):  # the base signature; 0 for a sum of no components
         return sum(c.mean_intensity_si(nu_hz) for c in self._components)
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         return SumField([c.scaled(factor) for c in self._components])
 
-    def attenuated(self, A_V, *, law="G23", R_V=3.1):
+    def attenuated(self, A_V: float, *, law: str = "G23", R_V: float = 3.1) -> RadiationField:
         """Each component attenuated by the same A_V (so ``components`` stay separable)."""
         curve = extinction_curve(law, R_V=R_V)
         return SumField([AttenuatedField(c, A_V, curve=curve) for c in self._components])
@@ -590,7 +591,7 @@ class ExtinctionCurve:
         self._a_min = float(model(self._xmin / u.micron))
         self._a_max = float(model(self._xmax / u.micron))
 
-    def a_over_av(self, nu_hz):
+    def a_over_av(self, nu_hz: ArrayLike) -> np.ndarray:
         """A(lambda)/A(V) at ``nu_hz`` (Hz, 1-D or any shape)."""
         nu = np.asarray(nu_hz, dtype=float)
         x = nu / C_LIGHT * 1e-6  # inverse microns
@@ -600,7 +601,7 @@ class ExtinctionCurve:
         a = np.where(x < self._xmin, self._a_min * (x / self._xmin) ** 2, a)
         return np.where(x > self._xmax, self._a_max, a)
 
-    def tau_per_av(self, nu_hz):
+    def tau_per_av(self, nu_hz: ArrayLike) -> np.ndarray:
         """Optical depth per magnitude of A_V, (ln 10 / 2.5) A(lambda)/A(V)."""
         return _TAU_PER_MAG * self.a_over_av(nu_hz)
 
@@ -635,10 +636,10 @@ class AttenuatedField(RadiationField):
             raise InputError(f"attenuated: A_V must be a finite number >= 0 (mag), got {A_V!r}")
         self.curve = curve
 
-    def mean_intensity_si(self, nu_hz):
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
         return self.field.mean_intensity_si(nu_hz) * np.exp(-self.A_V * self.curve.tau_per_av(nu_hz))
 
-    def scaled(self, factor):
+    def scaled(self, factor: float) -> RadiationField:
         return AttenuatedField(self.field.scaled(factor), self.A_V, curve=self.curve)
 
     def __repr__(self):

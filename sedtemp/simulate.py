@@ -7,16 +7,26 @@ Noise is given either per band as a signal-to-noise ratio (``snr``: each
 band's error is its own model flux / snr) or as a survey depth (``depth``:
 every band's error is the same fraction of the source's *peak* band flux,
 err = peak / depth, so fainter bands have lower S/N, as in a real survey of
-fixed sensitivity).
+fixed sensitivity) or as the errors themselves (``sigma``: given 1-sigma
+errors per band, e.g. one fixed error per band for a whole population).
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .errors import InputError
+
+if TYPE_CHECKING:
+    from .bands import BandSet
+
+# model: an SEDModel, calibration: a mapping or a Calibration (inference-layer types, so Any here)
+#: What ``seed=`` accepts (None means 0).
+SeedLike = int | np.random.SeedSequence | np.random.Generator | None
 
 __all__ = ["JY_SI", "simulate_photometry"]
 
@@ -24,8 +34,11 @@ __all__ = ["JY_SI", "simulate_photometry"]
 JY_SI = 1e-26
 
 
-def simulate_photometry(bands, model, theta, *, snr=None, depth=None, calibration=None, seed=None,
-                        unit_si=JY_SI):
+def simulate_photometry(bands: BandSet, model: Any, theta: ArrayLike, *, snr: ArrayLike | None = None,
+                        depth: ArrayLike | None = None, sigma: ArrayLike | None = None,
+                        calibration: Any = None,
+                        seed: SeedLike = None, unit_si: float = JY_SI
+                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Noisy band fluxes of ``model`` at parameters ``theta``.
 
     Parameters
@@ -38,7 +51,9 @@ def simulate_photometry(bands, model, theta, *, snr=None, depth=None, calibratio
         Per-band signal-to-noise: err = model flux / snr.
     depth : float or array_like (n,), keyword-only
         Survey depth: err = (peak band flux of the source) / depth in every band.
-        Exactly one of ``snr`` and ``depth`` is given.
+    sigma : float or array_like (n_bands,) or (n, n_bands), keyword-only
+        The 1-sigma errors themselves, in ``unit_si``.
+        Exactly one of ``snr``, ``depth`` and ``sigma`` is given.
     calibration : mapping name -> (band names, fraction), keyword-only
         Calibration groups: one shared factor (1 + fraction * N(0, 1)) per
         group and source multiplies the model fluxes of its bands.
@@ -55,7 +70,7 @@ def simulate_photometry(bands, model, theta, *, snr=None, depth=None, calibratio
     Raises
     ------
     InputError
-        Neither or both of ``snr`` and ``depth``; a calibration band not in ``bands``.
+        Not exactly one of ``snr``, ``depth`` and ``sigma``; a calibration band not in ``bands``.
 
     Examples
     --------
@@ -67,13 +82,16 @@ def simulate_photometry(bands, model, theta, *, snr=None, depth=None, calibratio
     >>> bool(np.allclose(e, m / 10))
     True
     """
-    if (snr is None) == (depth is None):
-        raise InputError("simulate_photometry needs exactly one of snr= (per band) or depth= (peak / noise)")
+    if sum(x is not None for x in (snr, depth, sigma)) != 1:
+        raise InputError("simulate_photometry needs exactly one of snr= (per band), depth= (peak / noise) "
+                         "or sigma= (the errors)")
     theta = np.atleast_2d(np.asarray(theta, float))
     rng = np.random.default_rng(0 if seed is None else seed)
     m = bands.band_fluxes(model.sed_si(bands.nu_grid_hz, theta)) / unit_si
     if snr is not None:
         err = m / np.asarray(snr, float)
+    elif sigma is not None:
+        err = np.broadcast_to(np.asarray(sigma, float), m.shape).copy()
     else:
         err = np.broadcast_to(m.max(axis=1, keepdims=True) / np.reshape(np.asarray(depth, float), (-1, 1)),
                               m.shape).copy()

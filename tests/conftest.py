@@ -6,6 +6,7 @@ import pytest
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
+from sedtemp.simulate import simulate_photometry
 
 #: Invented band set (top-hats, 30 % wide in frequency) spanning the far-IR/submm.
 WAVELENGTHS_UM = (70, 100, 160, 250, 350, 500)
@@ -23,16 +24,9 @@ def model():
 
 
 def simulate(model, bands, theta, snr, rng, calibration=None):
-    """Band fluxes (Jy) of parameter rows ``theta`` with Gaussian noise at ``snr``."""
-    theta = np.atleast_2d(theta)
-    m = bands.band_fluxes(model.sed_si(bands.nu_grid_hz, theta)) / 1e-26
-    err = m / snr
-    f = m + err * rng.standard_normal(m.shape)
-    if calibration is not None:
-        for members, frac in calibration.values():
-            idx = [bands.names.index(b) for b in members]
-            f[:, idx] += m[:, idx] * frac * rng.standard_normal((m.shape[0], 1))
-    return f, err, m
+    """Band fluxes (Jy) of parameter rows ``theta`` with Gaussian noise at ``snr``: the tests'
+    shorthand for :func:`sedtemp.simulate.simulate_photometry` drawing from the generator ``rng``."""
+    return simulate_photometry(bands, model, theta, snr=snr, calibration=calibration, seed=rng)
 
 
 @pytest.fixture(scope="session")

@@ -75,7 +75,7 @@ def _csv(tmp_path, rows, header="name,F70,E70,F160,E160,F250,E250,F350,E350,F500
 
 def _rows(t, ids, lims):
     out = []
-    for r, i, lim in zip(t, ids, lims):
+    for r, i, lim in zip(t, ids, lims, strict=True):
         out.append(",".join([i, *(f"{float(r[c]):.6e}" for c in t.colnames[1:]), lim]))
     return out
 

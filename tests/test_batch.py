@@ -219,7 +219,7 @@ def test_source_plots_of_flagged_sources_with_cap(tmp_path, catalog):
     raw["output"].update(source_plots="flagged", max_source_plots=2)
     wf = parse_workflow(raw)
     res = run_batch(map_catalog(catalog[:6], wf), wf, output_dir=tmp_path)
-    flagged = [str(k) for k, f in zip(res["name"], res["fit_flags"]) if f != "none"]
+    flagged = [str(k) for k, f in zip(res["name"], res["fit_flags"], strict=True) if f != "none"]
     assert len(flagged) > 2  # otherwise the cap is not exercised
     files = sorted(p.name for p in (tmp_path / "sources").iterdir())
     # grid sources: corner and SED from the run's grid draws; no chain, so no trace and no refit

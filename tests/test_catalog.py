@@ -49,7 +49,7 @@ def test_formats_give_identical_mapping(tmp_path, suffix, fmt):
     if suffix == ".csv":  # CSV with a units row under the header
         lines = [",".join(t.colnames), ",".join("" if t[c].unit is None else str(t[c].unit) for c in t.colnames)]
         lines += [",".join(repr(float(v)) if not isinstance(v, str) else v for v in row) for row in
-                  zip(*[list(np.asarray(t[c])) for c in t.colnames])]
+                  zip(*[list(np.asarray(t[c])) for c in t.colnames], strict=True)]
         path.write_text("\n".join(lines) + "\n")
     else:
         t.write(path, format=fmt)

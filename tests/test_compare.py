@@ -28,6 +28,8 @@ from sedtemp.compare import (
     compare_table,
     row_seed,
 )
+from sedtemp.compare.chunk import column_names
+from sedtemp.compare.core import CLASS_COLUMN
 from sedtemp.equilibrium import (
     absorbed_power,
     emitted_power,
@@ -88,7 +90,7 @@ def test_source_in_its_own_field_is_consistent(grid, model, bands, uncertainty):
     # off-line, 5 x 200 realisations of five fields gave 0-1.5 %).
     draws, flags = _realisations(grid, model, bands, _t_eq(FIELD), N_REAL, 20.0, 2024)
     out = compare_table(_table(flags), FIELD, OPACITY, draws=draws, field_uncertainty=uncertainty, seed=1)
-    counts = Counter(out["flag"])
+    counts = Counter(out["heating_class"])
     assert counts["consistent"] / N_REAL >= 0.90
     assert (counts["extra_heating"] + counts["shielded"]) / N_REAL <= 0.05
     assert set(counts) <= set(FLAGS)
@@ -104,7 +106,7 @@ def test_warmer_source_is_extra_heating_and_its_power_is_recovered(grid, model, 
     p_inj = float(emitted_power(t_hot, OPACITY, beta=BETA_TRUE) - absorbed_power(FIELD, OPACITY, beta=BETA_TRUE))
     draws, flags = _realisations(grid, model, bands, t_hot, N_REAL, 20.0, 7)
     out = compare_table(_table(flags), FIELD, OPACITY, draws=draws, seed=2)
-    assert np.all(out["flag"] == "extra_heating")
+    assert np.all(out["heating_class"] == "extra_heating")
     lo, hi = (u.Quantity(out[c]).to_value(u.W / u.kg) for c in ("extra_power_p16", "extra_power_p84"))
     assert np.mean((lo < p_inj) & (p_inj < hi)) == pytest.approx(0.68, abs=0.099)
     # the ratio of the medians over realisations is the injected 1.5: single-realisation
@@ -138,7 +140,7 @@ def test_source_behind_AV20_is_shielded(grid, model, bands):
     t_att, t_open = _t_eq(ISRF(3.0).attenuated(20.0)), _t_eq(ISRF(3.0))
     draws, flags = _realisations(grid, model, bands, t_att, N_REAL, 20.0, 11)
     out = compare_table(_table(flags), ISRF(3.0), OPACITY, draws=draws, seed=3)
-    assert np.all(out["flag"] == "shielded")
+    assert np.all(out["heating_class"] == "shielded")
     assert np.median(out["ratio_median"]) == pytest.approx(t_att / t_open, rel=0.03)
 
 
@@ -152,7 +154,7 @@ def test_two_band_low_snr_posterior_is_unconstrained():
     with pytest.warns(GridWarning, match="piled against the grid/prior edge"):
         draws, flags = _realisations(g2, fixed, two, _t_eq(ISRF(3.0)), N_REAL, 3.0, 5)
     out = compare_table(_table(flags), ISRF(3.0), OPACITY, draws=draws, seed=4)
-    assert np.all(out["flag"] == "unconstrained")
+    assert np.all(out["heating_class"] == "unconstrained")
     prior_set = np.array(["prior" in f for f in flags])
     assert all("set by its prior" in v for v in out["verdict"][prior_set])
 
@@ -179,10 +181,10 @@ def test_projected_distance_gives_an_upper_bound_not_shielding(grid, model, band
     t_true = _t_eq(ISRF(1.0) + Star(2e4 * u.K, luminosity=1e4 * u.L_sun, distance=0.9 * u.pc))
     draws, flags = _realisations(grid, model, bands, t_true, 50, 20.0, 13)
     proj = compare_table(_table(flags), field, OPACITY, draws=draws, projected=True, seed=5, opacity_uncertainty=0)
-    assert np.all(proj["flag"] == "consistent") and np.all(proj["T_eq_is_upper_bound"])
+    assert np.all(proj["heating_class"] == "consistent") and np.all(proj["T_eq_is_upper_bound"])
     assert all("upper bound" in v and "cannot show shielding" in v for v in proj["verdict"])
     taken = compare_table(_table(flags), field, OPACITY, draws=draws, projected=False, seed=5, opacity_uncertainty=0)
-    assert np.all(taken["flag"] == "shielded") and not np.any(taken["T_eq_is_upper_bound"])
+    assert np.all(taken["heating_class"] == "shielded") and not np.any(taken["T_eq_is_upper_bound"])
     # keyed by the component object: the same rule
     one = {k: v[0] for k, v in draws.items()}
     by_obj = compare_draws(one["T"], one["beta"], field, OPACITY, field_uncertainty={star_proj: ProjectedDistance()}, opacity_uncertainty=0)
@@ -288,10 +290,10 @@ def test_table_rows_equal_compare_draws_with_their_row_seed():
         one = compare_draws(t, b, ISRF(tab["U"][i]), OPACITY, mass_draws=m, field_uncertainty=unc,
                             seed=row_seed(99, key))
         cols = one.columns()
-        assert out["flag"][i] == one.flag and out["p_warmer"][i] == one.p_warmer
+        assert out["heating_class"][i] == one.flag and out["p_warmer"][i] == one.p_warmer
         for name in ("T_eq_median", "ratio_p84", "extra_power_median", "extra_luminosity_p16"):
             assert float(out[name][i]) == pytest.approx(cols[name], rel=1e-12)
-    assert out["flag"][2] == "" and out["verdict"][2] == "not compared: no posterior draws for id 'c'"
+    assert out["heating_class"][2] == "" and out["verdict"][2] == "not compared: no posterior draws for id 'c'"
     assert np.isnan(out["T_eq_median"][2])
     assert out["T_eq_median"].unit == u.K and out["extra_luminosity_median"].unit == u.L_sun
 
@@ -303,7 +305,7 @@ def test_table_reads_draws_columns_and_bad_rows_get_a_reason():
     tab = Table({"id": [1, 2], "draws_T": t * u.K, "draws_beta": np.full((2, 100), 1.8),
                  "draws_log10_mass": np.zeros((2, 100))})
     out = compare_table(tab, ISRF(1.0), OPACITY, seed=0)
-    assert list(out["flag"]) == ["consistent", "consistent"]
+    assert list(out["heating_class"]) == ["consistent", "consistent"]
     # 1 M_sun of dust (log10_mass = 0): L in L_sun equals the power in L_sun / M_sun
     assert out["extra_luminosity_median"][0] == pytest.approx(out["extra_power_solar_median"][0], rel=1e-12)
     bad = compare_table(tab, ISRF(1.0), OPACITY, field_uncertainty={3: ScaleUncertainty(2)}, seed=0)
@@ -314,8 +316,10 @@ def test_columns_contract():
     comp = compare_draws(np.linspace(17, 19, 50), 1.8, ISRF(1.0), OPACITY)
     cols = comp.columns()
     for key in ("T_eq_median", "T_eq_p16", "T_eq_p84", "ratio_median", "U_implied_median", "extra_power_median",
-                "extra_luminosity_median", "p_warmer", "flag", "verdict", "T_eq_is_upper_bound"):
+                "extra_luminosity_median", "p_warmer", "heating_class", "verdict", "T_eq_is_upper_bound"):
         assert key in cols
+    assert "flag" not in cols and cols["heating_class"] == comp.flag  # the pipeline's column name
+    assert list(cols) == [CLASS_COLUMN if k == "flag" else k for k in column_names()]  # compare_chunk's order
     assert np.isnan(cols["extra_luminosity_median"]) and comp.extra_luminosity is None
     assert isinstance(comp, Comparison) and repr(comp).startswith("<Comparison consistent")
 
@@ -403,12 +407,13 @@ def test_compare_chunk_equals_compare_draws_per_source():
     for i in range(n):
         one = compare_draws(T[i], b[i], fields[i], OPACITY, mass_draws=mass[i], seed=row_seed(7, f"S{i}"), **kw)
         for name, val in one.columns().items():
+            chunk_name = "flag" if name == "heating_class" else name  # compare_chunk's naming
             if isinstance(val, str):
-                assert got[name][i] == val, name
+                assert got[chunk_name][i] == val, name
             else:
-                np.testing.assert_allclose(got[name][i], val, rtol=1e-10, atol=0, err_msg=name)
+                np.testing.assert_allclose(got[chunk_name][i], val, rtol=1e-10, atol=0, err_msg=name)
         np.testing.assert_allclose(got["draws_T_eq"][i], one.T_eq.to_value(u.K), rtol=1e-10)
-    assert set(got) - {"draws_T_eq", "draws_ratio"} == set(one.columns())
+    assert set(got) - {"draws_T_eq", "draws_ratio"} == {"flag" if k == "heating_class" else k for k in one.columns()}
 
 
 def test_shared_uncertainty_is_common_to_every_source_whatever_the_chunk():

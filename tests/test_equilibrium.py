@@ -113,7 +113,7 @@ def test_temperature_for_power_inverts_emission():
     p = np.array([1e-3, 0.3, 20.0, 3e3, 1e6])
     b = np.array([1.1, 1.37, 1.92, 2.33, 2.0])  # off the 0.05 beta nodes
     t = temperature_for_power(p, BIG, beta=b)
-    ref = [brentq(lambda x: emit(x, bb) - pp, 0.6, 4000, rtol=1e-12) for pp, bb in zip(p, b)]
+    ref = [brentq(lambda x: emit(x, bb) - pp, 0.6, 4000, rtol=1e-12) for pp, bb in zip(p, b, strict=True)]
     np.testing.assert_allclose(t, ref, rtol=1e-4)
     np.testing.assert_allclose(emitted_power(ref, BIG, beta=b), p, rtol=1e-4)
     # power law: analytic, exact against scipy quad of nu^beta B
@@ -232,10 +232,10 @@ def test_predict_chunk_equals_equilibrium_temperature_per_source():
     fields = [build_field([{"kind": "isrf", "U": float(U)},
                            {"kind": "star", "teff": 2e4, "luminosity": 1e4, "distance": float(d)},
                            {"kind": "cmb"}], A_V=float(av))
-              for U, d, av in zip(np.exp(rng.uniform(-1, 2, n)), rng.uniform(0.5, 3, n), rng.uniform(0, 10, n))]
+              for U, d, av in zip(np.exp(rng.uniform(-1, 2, n)), rng.uniform(0.5, 3, n), rng.uniform(0, 10, n), strict=True)]
     b = rng.uniform(1.0, 2.6, n)
     got = predict_chunk(fields, BIG, b, details=True)
-    ref = np.array([equilibrium_temperature(f, BIG, beta=bi).to_value(u.K) for f, bi in zip(fields, b)])
+    ref = np.array([equilibrium_temperature(f, BIG, beta=bi).to_value(u.K) for f, bi in zip(fields, b, strict=True)])
     np.testing.assert_allclose(got["T_eq"], ref, rtol=1e-6)
     assert np.all(got["opacity_extrapolated_fraction"] == 0.0)
     with pytest.raises(InputError, match=r"predict_chunk: beta must have shape \(40,\)"):

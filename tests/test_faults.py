@@ -82,7 +82,7 @@ def _run_child(target, *args):
 # the seeded kill points: 10 draws of (file replacement number, before/after); a run of
 # 14 sources in 5 chunks replaces ~17 files (state, 5 parts x (part, state), results, report)
 _POINTS = [(int(k), str(p)) for k, p in zip(np.random.default_rng(2024).integers(1, 18, 10),
-                                            np.random.default_rng(7).choice(["before", "after"], 10))]
+                                            np.random.default_rng(7).choice(["before", "after"], 10), strict=True)]
 
 
 @pytest.mark.parametrize("kill_at, phase", _POINTS)

@@ -77,7 +77,7 @@ def test_calibrated_chi2_broadcasts():
     chi2, logdet = calibrated_chi2(r, m, iv, masks, d2)
     i, j = 2, 1
     cov = np.diag(1 / iv[i, 0])
-    for mk, d in zip(masks, d2):
+    for mk, d in zip(masks, d2, strict=True):
         v = mk * m[i, j]
         cov = cov + d * np.outer(v, v)
     # Reference: dense linear algebra (numpy.linalg), exact to rounding.

@@ -247,7 +247,7 @@ def test_demo_subset_end_to_end(tmp_path, monkeypatch):
     # the demo leaves the catalogue plots and the plots of its flagged sources (up to the cap)
     for name in ("population", "comparison"):
         assert (tmp_path / f"{name}.pdf").stat().st_size > 0 and (tmp_path / f"{name}.png").stat().st_size > 0
-    flagged = [str(k) for k, f, s in zip(res["src"], res["heating_class"], res["status"]) if s == "ok" and f not in ("none", "consistent")]
+    flagged = [str(k) for k, f, s in zip(res["src"], res["heating_class"], res["status"], strict=True) if s == "ok" and f not in ("none", "consistent")]
     assert len(flagged) > 3  # the cap is reached
     assert sorted(p.name for p in (tmp_path / "sources").iterdir()) == sorted(
         f"{k}_{kind}.{ext}" for k in flagged[:3] for kind in ("corner", "sed") for ext in ("pdf", "png"))

@@ -21,7 +21,28 @@ def test_depth_and_snr_noise_and_repeatability():
     np.testing.assert_array_equal(f, f2)
     _, e3, m3 = simulate_photometry(BS, MOD, th, snr=20.0)
     np.testing.assert_allclose(e3, m3 / 20.0, rtol=1e-15)
-    with pytest.raises(InputError, match="needs exactly one of snr= .* or depth="):
+    with pytest.raises(InputError, match="needs exactly one of snr= .* depth= .* or sigma="):
         simulate_photometry(BS, MOD, th)
     with pytest.raises(InputError, match=r"calibration names band\(s\) \['zz'\]"):
         simulate_photometry(BS, MOD, th, snr=5, calibration={"g": (["zz"], 0.1)})
+    with pytest.raises(InputError, match="needs exactly one of"):
+        simulate_photometry(BS, MOD, th, snr=5, sigma=1.0)
+
+
+def test_sigma_noise_is_the_given_errors():
+    th = [[0.0, 15.0, 1.8], [0.5, 25.0, 1.6]]
+    sig = np.array([0.1, 0.2, 0.3])
+    f, e, m = simulate_photometry(BS, MOD, th, sigma=sig, seed=3)
+    np.testing.assert_array_equal(e, np.broadcast_to(sig, (2, 3)))  # one error per band for every source
+    z = np.random.default_rng(3).standard_normal((2, 3))
+    np.testing.assert_allclose(f, m + sig * z, rtol=1e-15)
+    _, e1, _ = simulate_photometry(BS, MOD, th, sigma=0.5)
+    assert np.all(e1 == 0.5)
+
+
+def test_generator_seed_is_used_as_is():
+    # a Generator is drawn from in place (the tests hand one generator to successive calls)
+    rng = np.random.default_rng(5)
+    f1, _, _ = simulate_photometry(BS, MOD, [[0.0, 15.0, 1.8]], snr=10, seed=rng)
+    f2, _, _ = simulate_photometry(BS, MOD, [[0.0, 15.0, 1.8]], snr=10, seed=rng)
+    assert not np.array_equal(f1, f2)

@@ -21,6 +21,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from dataclasses import dataclass
 from dataclasses import field as _dc_field
+from typing import Any
 
 import astropy.units as u
 import numpy as np
@@ -39,6 +40,15 @@ from .uncertainty import _Shared
 __all__ = ["Comparison", "compare", "compare_draws"]
 
 _W_PER_KG = u.W / u.kg
+#: Name of the heating-class column in the Python API's tables (:meth:`Comparison.columns`,
+#: :func:`~sedtemp.compare.compare_table`), as in the pipeline's results.
+CLASS_COLUMN = "heating_class"
+
+
+def api_columns(cols: Mapping[str, Any]) -> dict[str, Any]:
+    """``cols`` (in :func:`compare_chunk`'s naming) with the heating class under
+    :data:`CLASS_COLUMN`, in the same order."""
+    return {(CLASS_COLUMN if k == "flag" else k): v for k, v in cols.items()}
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -122,10 +132,12 @@ class Comparison:
         ``_median``, ``_p84``, ``_p97_5``; then ``p_warmer``,
         ``stochastic_fraction``, ``T_eq_is_upper_bound``,
         ``opacity_extrapolated_fraction`` (median fraction of the absorbed
-        power from where the opacity law is extrapolated), ``flag``,
-        ``verdict``. The same computation as :func:`compare_chunk`.
+        power from where the opacity law is extrapolated), ``heating_class``
+        (the :attr:`flag`; the name the pipeline's results use), ``verdict``.
+        The same computation as :func:`compare_chunk` (whose dict names the
+        heating class ``flag``).
         """
-        return dict(self._columns)
+        return api_columns(self._columns)
 
     def __repr__(self):
         return f"<Comparison {self.flag}: {self.verdict}>"

@@ -9,14 +9,17 @@ sources widens the count's interval as it should.
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
+
 import numpy as np
+from numpy.typing import ArrayLike
 
 from .thresholds import UNTRUSTED_FIT_FLAGS, Thresholds
 
 __all__ = ["catalogue_counts", "classify", "untrusted_flags", "verdict"]
 
 
-def untrusted_flags(fit_flags) -> tuple:
+def untrusted_flags(fit_flags: str | Sequence[str] | None) -> tuple[str, ...]:
     """The fit flags (sequence or comma-separated string) that make the posterior prior-set."""
     if fit_flags is None:
         return ()
@@ -97,7 +100,8 @@ def verdict(flag, *, q, p_warmer, n, th, bounded, untrusted=(), stochastic_fract
     return f"consistent: {r}, P(T_fit > T_eq) {_pfmt(p_warmer, n)}; the modelled field explains T_fit{tail}"
 
 
-def catalogue_counts(ratio_draws, *, thresholds=None, interval=0.68) -> dict:
+def catalogue_counts(ratio_draws: ArrayLike, *, thresholds: Thresholds | Mapping[str, float] | None = None,
+                     interval: float = 0.68) -> dict:
     """How many sources are warmer / colder than equilibrium, with an interval over catalogue draws.
 
     Parameters

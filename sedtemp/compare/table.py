@@ -13,7 +13,7 @@ from ..fit.summary import QUANTILES
 from ..radiation import RadiationField
 from ..seeds import source_seed
 from .chunk import column_names
-from .core import compare_draws
+from .core import CLASS_COLUMN, api_columns, compare_draws
 from .thresholds import Thresholds
 
 __all__ = ["compare_table", "row_seed"]
@@ -31,7 +31,7 @@ def _quantity_of(name):
     return name
 
 
-def row_seed(seed, key) -> np.random.SeedSequence:
+def row_seed(seed: int | None, key: object) -> np.random.SeedSequence:
     """Seed of one row's comparison: :func:`sedtemp.seeds.source_seed` ``(seed, key)``, the rule of
     the grid fitter and the pipeline alike (``seed=None`` means 0)."""
     return source_seed(seed, key)
@@ -50,7 +50,8 @@ def _draws_of_row(draws, table, i, key):
             return f"no posterior draws for id {key!r}"
         d = draws[key]
         if isinstance(d, (tuple, list)):
-            d = dict(zip(("T", "beta", "mass"), d))
+            # strict=False: the mass is optional, (T, beta) pairs with the first two names
+            d = dict(zip(("T", "beta", "mass"), d, strict=False))
     T = d["T"]
     keep = np.isfinite(np.asarray(u.Quantity(T).value if isinstance(T, u.Quantity) else T, float))
     if not keep.any():
@@ -122,8 +123,8 @@ def compare_table(table: Table, field, opacity, *, draws=None, id_column="id", f
         A copy of ``table`` with the columns of :meth:`Comparison.columns`
         (``T_eq_*`` in K, ``extra_power_*`` in W/kg, ``extra_power_solar_*``
         in L_sun/M_sun, ``extra_luminosity_*`` in L_sun). A row without draws,
-        or whose own inputs are invalid, gets NaN, an empty ``flag`` and a
-        verdict "not compared: <reason>".
+        or whose own inputs are invalid, gets NaN, an empty ``heating_class``
+        and a verdict "not compared: <reason>".
 
     Raises
     ------
@@ -170,11 +171,11 @@ def compare_table(table: Table, field, opacity, *, draws=None, id_column="id", f
 
 def _with_columns(table, rows, reasons):
     out = Table(table, copy=True)
-    names = column_names() if not rows else list(next(iter(rows.values())))
+    names = list(api_columns(dict.fromkeys(column_names()))) if not rows else list(next(iter(rows.values())))
     for name in names:
         vals = [rows[i][name] if i in rows else None for i in range(len(table))]
-        if name in ("flag", "verdict"):
-            col = np.array([v if v is not None else ("" if name == "flag" else f"not compared: {reasons[i]}")
+        if name in (CLASS_COLUMN, "verdict"):
+            col = np.array([v if v is not None else ("" if name == CLASS_COLUMN else f"not compared: {reasons[i]}")
                             for i, v in enumerate(vals)], dtype=str)
         elif name == "T_eq_is_upper_bound":
             col = np.array([bool(v) for v in vals])

@@ -68,7 +68,7 @@ class Thresholds:
                                  "max_ratio_width > 0, 0 < p_stochastic <= 1)")
 
     @classmethod
-    def from_any(cls, value) -> Thresholds:
+    def from_any(cls, value: Thresholds | Mapping[str, float] | None) -> Thresholds:
         """``None`` (defaults), a :class:`Thresholds`, or a mapping of some of its fields."""
         if value is None:
             return cls()

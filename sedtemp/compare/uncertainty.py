@@ -89,11 +89,11 @@ class FieldUncertainty:
 
     bounds_T_eq = False
 
-    def factors(self, component, n, rng):  # pragma: no cover - abstract
+    def factors(self, component: RadiationField | None, n: int, rng: np.random.Generator) -> np.ndarray:  # pragma: no cover - abstract
         """``n`` factors (ndarray) for ``component`` (``None``: the whole field)."""
         raise NotImplementedError
 
-    def check(self, component):
+    def check(self, component: RadiationField | None) -> None:
         """Raise :class:`InputError` if this uncertainty cannot apply to ``component``."""
 
 
@@ -122,10 +122,10 @@ class ScaleUncertainty(FieldUncertainty):
                              f"factor of 2'), got {factor!r}")
         self.shared = bool(shared)
 
-    def factors(self, component, n, rng):
+    def factors(self, component: RadiationField | None, n: int, rng: np.random.Generator) -> np.ndarray:
         return np.exp(np.log(self.factor) * rng.standard_normal(n))
 
-    def shared_factors(self, normals):
+    def shared_factors(self, normals: np.ndarray) -> np.ndarray:
         """Factors from the shared standard normals of this component."""
         return np.exp(np.log(self.factor) * normals)
 
@@ -153,10 +153,10 @@ class DistanceUncertainty(FieldUncertainty):
             raise InputError(f"DistanceUncertainty: fraction must be a number >= 0 (0.2 for 20 %), "
                              f"got {fraction!r}")
 
-    def check(self, component):
+    def check(self, component: RadiationField | None) -> None:
         _star_of(component, "DistanceUncertainty")
 
-    def factors(self, component, n, rng):
+    def factors(self, component: RadiationField | None, n: int, rng: np.random.Generator) -> np.ndarray:
         star = _star_of(component, "DistanceUncertainty")
         r = _distance_ratio(rng, n, self.fraction, star.radius_m / star.distance_m)
         return star.dilution_at(r * star.distance_m * u.m) / star.dilution
@@ -194,10 +194,10 @@ class ProjectedDistance(FieldUncertainty):
             raise InputError(f"ProjectedDistance: fraction must be a number >= 0, got {fraction!r}")
         self.isotropic = bool(isotropic)
 
-    def check(self, component):
+    def check(self, component: RadiationField | None) -> None:
         _star_of(component, "ProjectedDistance")
 
-    def factors(self, component, n, rng):
+    def factors(self, component: RadiationField | None, n: int, rng: np.random.Generator) -> np.ndarray:
         star = _star_of(component, "ProjectedDistance")
         r = _distance_ratio(rng, n, self.fraction, star.radius_m / star.distance_m)
         if self.isotropic:

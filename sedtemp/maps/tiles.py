@@ -96,7 +96,7 @@ def _bitmask(flags):
 def _fit_pixels(task, I, S, usable, ys, xs):
     """Grid fits of the selected pixels in blocks; (columns, draws, flags)."""
     grid = task.grid
-    keys = [f"{y}:{x}" for y, x in zip(ys, xs)]
+    keys = [f"{y}:{x}" for y, x in zip(ys, xs, strict=True)]
     seqs = [source_seed(task.seed, k).spawn(2) for k in keys]
     flux = np.where(usable, I, 0.0) * task.omega_sr
     err = np.where(usable, S * task.omega_sr, np.inf)

@@ -379,7 +379,7 @@ def _skip_reasons(missing, lim, names, need):
     n_use = usable.sum(axis=1)
     reasons = np.full(missing.shape[0], "", dtype=object)
     for i in np.flatnonzero(n_use < need):  # only the skipped sources
-        used = [b for b, ok in zip(names, usable[i]) if ok]
+        used = [b for b, ok in zip(names, usable[i], strict=True) if ok]
         reasons[i] = (f"too_few_bands: {n_use[i]} usable band(s) {used}, need {need}")
     return reasons.astype(str)
 

@@ -134,7 +134,7 @@ def run_summary(tab: Table) -> dict:
     status = Counter(str(s) for s in tab["status"]) if "status" in tab.colnames else Counter()
     ok = np.asarray(tab["status"]) == STATUS_OK if "status" in tab.colnames else np.ones(len(tab), bool)
     flags = _flag_sets(tab)
-    quality = {label: int(sum(1 for f, o in zip(flags, ok) if o and flag in f)) for flag, label in _QUALITY}
+    quality = {label: int(sum(1 for f, o in zip(flags, ok, strict=True) if o and flag in f)) for flag, label in _QUALITY}
     classes = {}
     if CLASS_COLUMN in tab.colnames:
         cls = np.asarray(tab[CLASS_COLUMN], dtype=str)

@@ -54,7 +54,8 @@ def _text_columns(header, data_rows):
     names = [h.strip() for h in header]
     keep = set()
     for row in csv.reader(data_rows):
-        for name, cell in zip(names, row):
+        # strict=False: a ragged row is the CSV reader's to report; here only its cells count
+        for name, cell in zip(names, row, strict=False):
             if name not in keep and _LEADING_ZERO.match(cell):
                 keep.add(name)
     return {name: [ascii.convert_numpy(str)] for name in keep}
@@ -71,13 +72,14 @@ def _read_csv_with_units(path: Path) -> Table:
     if not body:  # a header alone: an empty catalogue with these columns
         return Table(names=[h.strip() for h in rows[0]] if rows else [], dtype=[float] * len(rows[0] if rows else []))
     tab = Table.read([data[0], *body], format="ascii.csv", converters=converters)
-    for name, unit in zip(rows[0], units or []):
+    # strict=False: without a units row there is nothing to pair (units or [] is empty)
+    for name, unit in zip(rows[0], units or [], strict=False):
         if unit is not None and name.strip() in tab.colnames:
             tab[name.strip()].unit = unit
     return tab
 
 
-def read_catalog(path, *, format=None) -> Table:
+def read_catalog(path: str | Path, *, format: str | None = None) -> Table:
     """Read a catalogue file with astropy.
 
     Parameters
@@ -149,7 +151,7 @@ def _write_fits(table, tmp):
         out.write(tmp, format="fits", overwrite=True)
 
 
-def write_table(table: Table, path, *, format="ecsv") -> Path:
+def write_table(table: Table, path: str | Path, *, format: str = "ecsv") -> Path:
     """Write ``table`` atomically (temporary file in the same folder, then rename).
 
     ECSV and FITS keep every unit, description and the metadata; CSV and

@@ -263,7 +263,7 @@ def _sed_data(ax, result, lam_band, conv):
     bars = ax.errorbar(lam_band[det], f[det], yerr=(lower, e[det]), fmt="o", color="k", ms=3.5,
                        elinewidth=0.8, capsize=1.5, zorder=5, label="measured")
     bars.lines[0].set_gid("data")
-    for x, y in zip(lam_band[arr], arrow_at[arr]):  # a handful of bands, not a frequency grid
+    for x, y in zip(lam_band[arr], arrow_at[arr], strict=True):  # a handful of bands, not a frequency grid
         ax.annotate("", xy=(x, y / 2.5), xytext=(x, y), zorder=5, gid="upper_limit",
                     arrowprops={"arrowstyle": "-|>", "color": "k", "lw": 0.8, "shrinkA": 0,
                                 "shrinkB": 0, "mutation_scale": 6})

@@ -19,7 +19,10 @@ on (-RHO_MAX, RHO_MAX) for correlations.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import InputError
 
@@ -89,17 +92,17 @@ class GaussianPopulation:
     def __init__(self, low, high):
         self.box = _Box(low, high)
 
-    def log_prior(self, theta):
+    def log_prior(self, theta: np.ndarray) -> np.ndarray:
         b = self.box
         m, s, rho = theta[:, 0:2], theta[:, 2:4], theta[:, 4]
         ok = (np.all((m >= b.low) & (m <= b.high), axis=1) & np.all((s > 0) & (s <= b.width), axis=1)
               & (np.abs(rho) < RHO_MAX))
         return np.where(ok, 0.0, -np.inf)
 
-    def log_density(self, theta, x):
+    def log_density(self, theta: np.ndarray, x: np.ndarray) -> np.ndarray:
         return _bivariate_log_normal(x, *theta.T)
 
-    def initial(self, x, rng, n_walkers):
+    def initial(self, x: np.ndarray, rng: np.random.Generator, n_walkers: int) -> np.ndarray:
         mean, sd, rho, _ = _start_moments(x)
         sd = np.clip(sd, 0.05 * self.box.width, 0.9 * self.box.width)
         centre = np.array([*mean, *sd, rho])
@@ -108,11 +111,11 @@ class GaussianPopulation:
         p0[:, 2:4] = np.abs(p0[:, 2:4])
         return p0
 
-    def derived(self, theta):
+    def derived(self, theta: np.ndarray) -> dict[str, np.ndarray]:
         """No derived quantities: the parameters are the population moments."""
         return {}
 
-    def components(self, theta):
+    def components(self, theta: np.ndarray) -> list[tuple[float, np.ndarray, np.ndarray]]:
         """[(weight, mean (2,), covariance (2, 2))] of one hyper-parameter vector."""
         mT, mb, sT, sb, rho = theta
         cov = np.array([[sT**2, rho * sT * sb], [rho * sT * sb, sb**2]])
@@ -136,20 +139,20 @@ class MixturePopulation:
         self._one = GaussianPopulation(low, high)
         self.box = self._one.box
 
-    def log_prior(self, theta):
+    def log_prior(self, theta: np.ndarray) -> np.ndarray:
         f = theta[:, 0]
         ok = (f > 0) & (f < 1) & (theta[:, 1] <= theta[:, 6])
         lp = self._one.log_prior(theta[:, 1:6]) + self._one.log_prior(theta[:, 6:11])
         # the ordering halves the support: a constant, irrelevant to the sampler
         return np.where(ok, lp, -np.inf)
 
-    def log_density(self, theta, x):
+    def log_density(self, theta: np.ndarray, x: np.ndarray) -> np.ndarray:
         f = theta[:, 0][:, None, None]
         a = _bivariate_log_normal(x, *theta[:, 1:6].T) + np.log1p(-f)
         b = _bivariate_log_normal(x, *theta[:, 6:11].T) + np.log(f)
         return np.logaddexp(a, b)
 
-    def initial(self, x, rng, n_walkers):
+    def initial(self, x: np.ndarray, rng: np.random.Generator, n_walkers: int) -> np.ndarray:
         _mean, sd, _rho, med = _start_moments(x)
         cut = np.median(med[:, 0])
         parts = []
@@ -166,7 +169,7 @@ class MixturePopulation:
         p0[:, 1], p0[:, 6] = lo, hi
         return p0
 
-    def derived(self, theta):
+    def derived(self, theta: np.ndarray) -> dict[str, np.ndarray]:
         """Overall mean, sds and correlation of the mixture, each (N,)."""
         f = theta[:, 0]
         w = np.stack([1.0 - f, f])  # (2, N)
@@ -181,7 +184,7 @@ class MixturePopulation:
         return {"T_mean": mean[:, 0], "beta_mean": mean[:, 1], "T_sd": sd[:, 0], "beta_sd": sd[:, 1],
                 "rho": cov / (sd[:, 0] * sd[:, 1])}
 
-    def components(self, theta):
+    def components(self, theta: np.ndarray) -> list[tuple[float, np.ndarray, np.ndarray]]:
         """[(weight, mean, covariance)] of both components of one hyper-parameter vector."""
         f = float(theta[0])
         c1 = self._one.components(theta[1:6])[0]
@@ -219,21 +222,21 @@ class HeatedMixture:
                              f"= {2 * s:.3g} (highest {y_high:.3g}); there is nothing to call heated")
         self.s_eq, self.y_high = s, float(y_high)
 
-    def log_prior(self, theta):
+    def log_prior(self, theta: np.ndarray) -> np.ndarray:
         f, mu, s = theta.T
         ok = (f > 0) & (f < 1) & (mu >= 2 * self.s_eq) & (mu <= self.y_high) & (s >= self.s_eq / 4) & (s <= mu / 2)
         with np.errstate(invalid="ignore", divide="ignore"):
             lp = -np.log(np.where(ok, mu / 2 - self.s_eq / 4, 1.0))
         return np.where(ok, lp, -np.inf)
 
-    def log_density(self, theta, x):
+    def log_density(self, theta: np.ndarray, x: np.ndarray) -> np.ndarray:
         f, mu, s = theta.T
         y = x[..., 0]
         eq = _log_normal_1d(y, np.zeros_like(mu), np.full_like(s, self.s_eq)) + np.log1p(-f)[:, None, None]
         hot = _log_normal_1d(y, mu, s) + np.log(f)[:, None, None]
         return np.logaddexp(eq, hot)
 
-    def log_responsibility(self, theta, x):
+    def log_responsibility(self, theta: np.ndarray, x: np.ndarray) -> np.ndarray:
         """log P(heated component | y) per walker and draw, (W, n, m)."""
         f, mu, s = theta.T
         y = x[..., 0]
@@ -241,7 +244,7 @@ class HeatedMixture:
         hot = _log_normal_1d(y, mu, s) + np.log(f)[:, None, None]
         return hot - np.logaddexp(eq, hot)
 
-    def initial(self, x, rng, n_walkers):
+    def initial(self, x: np.ndarray, rng: np.random.Generator, n_walkers: int) -> np.ndarray:
         mu0 = min(max(3 * self.s_eq, 0.5 * self.y_high), 0.9 * self.y_high)
         mu0 = max(mu0, 2 * self.s_eq * 1.01)
         f = rng.uniform(0.05, 0.5, n_walkers)
@@ -249,7 +252,7 @@ class HeatedMixture:
         s = np.clip(self.s_eq * (1 + 0.1 * rng.standard_normal(n_walkers)), self.s_eq / 4, mu / 2)
         return np.column_stack([f, mu, s])
 
-    def derived(self, theta):
+    def derived(self, theta: np.ndarray) -> dict[str, np.ndarray]:
         return {}
 
 
@@ -257,7 +260,7 @@ class HeatedMixture:
 MODELS = {"gaussian": GaussianPopulation, "mixture": MixturePopulation}
 
 
-def population_model(model, low, high):
+def population_model(model: str | Any, low: ArrayLike, high: ArrayLike) -> Any:
     """Resolve a registered name (``"gaussian"``, ``"mixture"``) or pass a model object through."""
     if isinstance(model, str):
         if model not in MODELS:

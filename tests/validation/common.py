@@ -46,6 +46,7 @@ from sedtemp.models import ModifiedBlackbody
 from sedtemp.opacity import SaturatedPowerLawOpacity
 from sedtemp.priors import Prior, Uniform, UniformAmplitude
 from sedtemp.radiation import ISRF, Star
+from sedtemp.simulate import simulate_photometry
 
 __all__ = [
     "JY",
@@ -193,19 +194,14 @@ def simulate(model, bands, prior, n, snr, rng, *, calibration=None, noise="snr",
     if theta is None:
         theta = prior.sample(rng, n, names)
     sb = bands if sim_bands is None else sim_bands
-    m = model_band_fluxes(model, sb, theta)
     if noise == "snr":
-        err = m / snr
-    elif noise == "depth":
+        noise_kw = {"snr": snr}
+    elif noise == "depth":  # one error per band: the reference source's flux / snr
         ref = np.array([[REFERENCE[k] for k in names]])
-        err = np.broadcast_to(model_band_fluxes(model, sb, ref) / snr, m.shape).copy()
+        noise_kw = {"sigma": model_band_fluxes(model, sb, ref)[0] / snr}
     else:
         raise ValueError(f"noise must be 'snr' or 'depth', got {noise!r}")
-    gain = np.ones_like(m)
-    for members, frac in (calibration or {}).values():
-        idx = [sb.names.index(b) for b in members]
-        gain[:, idx] += frac * rng.standard_normal((theta.shape[0], 1))
-    flux = m * gain + err * rng.standard_normal(m.shape)
+    flux, err, m = simulate_photometry(sb, model, theta, calibration=calibration, seed=rng, unit_si=JY, **noise_kw)
     return Population(np.asarray(theta, float), flux, err, m)
 
 

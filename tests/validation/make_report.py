@@ -111,7 +111,7 @@ def run_mcmc(n, pool, seed):
     res = {}
     for nb in NBANDS:
         for snr in SNRS:
-            rows = [o for j, o in zip(jobs, out) if j[0] == nb and j[1] == snr]
+            rows = [o for j, o in zip(jobs, out, strict=True) if j[0] == nb and j[1] == snr]
             theta = np.array([r[0] for r in rows])
             cols = {k: np.array([r[1][k] for r in rows]) for k in rows[0][1] if k.startswith(PARAMS)}
             nd = min(len(r[2]["T"]) for r in rows)
@@ -186,10 +186,10 @@ def run_robust(n, nw, pool, seed):
     # walker count (MCMC): shift of the median relative to 64 walkers (the default), in posterior sd
     jobs = [(7, 20.0, i, seed, w, pop.theta[i:i + 1]) for w in (16, 64, 128) for i in range(nw)]
     out = list(pool.map(_mcmc_task, jobs))
-    ref = {j[2]: o[1] for j, o in zip(jobs, out) if j[4] == 64}
+    ref = {j[2]: o[1] for j, o in zip(jobs, out, strict=True) if j[4] == 64}
     for w in (16, 128):
         d = {k: [] for k in ("T", "beta")}
-        for j, o in zip(jobs, out):
+        for j, o in zip(jobs, out, strict=True):
             if j[4] == w:
                 for k in d:
                     sd = 0.5 * (ref[j[2]][f"{k}_p84"] - ref[j[2]][f"{k}_p16"])
@@ -282,9 +282,9 @@ def fig_ranks(res, title, path):
 def fig_coverage(all_res, path):
     fig = Figure(figsize=(10, 4), layout="constrained")
     axes = fig.subplots(1, 2)
-    for ax, (lev, nom) in zip(axes, (("cov68", 0.68), ("cov95", 0.95))):
+    for ax, (lev, nom) in zip(axes, (("cov68", 0.68), ("cov95", 0.95)), strict=True):
         for mi, (label, res) in enumerate(all_res.items()):
-            for nb, mk in zip(NBANDS, "os"):
+            for nb, mk in zip(NBANDS, "os", strict=True):
                 for k, col in (("T", "C0"), ("beta", "C1")):
                     x = np.array(SNRS) * (1 + 0.04 * (mi - 1.5)) * (1.02 if k == "beta" else 1)
                     y = [res[f"{nb}b_snr{s:g}"][k][lev] for s in SNRS]
@@ -304,7 +304,7 @@ def fig_tbeta(scatter, path):
     keys = list(scatter)
     fig = Figure(figsize=(4 * len(keys), 4), layout="constrained")
     axes = fig.subplots(1, len(keys), squeeze=False)[0]
-    for ax, key in zip(axes, keys):
+    for ax, key in zip(axes, keys, strict=True):
         theta, Tm, bm, lsq = scatter[key]
         ax.scatter(theta[:, 1], theta[:, 2], s=2, color="0.6", label="truth")
         ax.scatter(lsq[:, 1], lsq[:, 2], s=2, color="C3", label="least squares")

@@ -76,7 +76,7 @@ def test_completeness_snr20(kind):
     heat, A_V = C.SOURCE_CLASSES[kind]
     if A_V > 0:  # true ratio against the unattenuated true field (forward module, true beta)
         open_ = np.array([equilibrium_temperature(C.make_field(U, d), C.OPACITY, scale=s, beta=b).to_value(u.K)
-                          for U, d, s, b in zip(fs.U, fs.star_pc, fs.scale, fs.pop.theta[:, 2])])
+                          for U, d, s, b in zip(fs.U, fs.star_pc, fs.scale, fs.pop.theta[:, 2], strict=True)])
         k = fs.T_eq_true / open_
     else:
         k = np.full(N, heat)
