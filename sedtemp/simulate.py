@@ -24,7 +24,6 @@ from .errors import InputError
 if TYPE_CHECKING:
     from .bands import BandSet
 
-# model: an SEDModel, calibration: a mapping or a Calibration (inference-layer types, so Any here)
 #: What ``seed=`` accepts (None means 0).
 SeedLike = int | np.random.SeedSequence | np.random.Generator | None
 
@@ -36,7 +35,7 @@ JY_SI = 1e-26
 
 def simulate_photometry(bands: BandSet, model: Any, theta: ArrayLike, *, snr: ArrayLike | None = None,
                         depth: ArrayLike | None = None, sigma: ArrayLike | None = None,
-                        calibration: Any = None,
+                        calibration: Any = None,  # model, calibration: inference-layer types
                         seed: SeedLike = None, unit_si: float = JY_SI
                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Noisy band fluxes of ``model`` at parameters ``theta``.
