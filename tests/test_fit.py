@@ -408,7 +408,12 @@ def test_marginal_sampler_matches_the_joint_sampler(source, bands, model):
     # posterior: medians within 6 sd / sqrt(ESS) of each other.
     f, e = source[0] * u.Jy, source[1] * u.Jy
     a = fit_source(f, e, bands, model=model, seed=3)
-    b = fit_source(f, e, bands, model=model, seed=3, marginalise=False)
+    with warnings.catch_warnings():
+        # the 3-D joint chain's R-hat sits at the 1.01 flag threshold (1.009-1.011
+        # depending on rounding in its start); its ESS, checked here, is what the test uses
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        b = fit_source(f, e, bands, model=model, seed=3, marginalise=False)
+    assert min(b.ess.values()) > 1000
     for name in ("T", "beta", "log10_mass"):
         sd = np.std(b.samples[name])
         tol = 6 * sd * np.sqrt(1 / a.ess[name] + 1 / b.ess[name])

@@ -216,16 +216,25 @@ class LogUniformLinearAmplitude(UniformLinearAmplitude):
         """Draws of A given the node (conditional ∝ N(A; mu, s) / A), from uniforms (..., n_uniform)."""
         mu, s = np.broadcast_arrays(np.asarray(mu, float), np.asarray(s, float))
         out = np.full(mu.shape, np.nan)
-        done = np.zeros(mu.shape, bool)
         reg = self._regular(mu, s, _REJECT_M)
         m = np.where(reg, mu / s, np.inf)
         plo, phi = ndtr(-_TRUNC), ndtr(_TRUNC)
-        for k in range(_ROUNDS):  # a fixed number of rounds, so each draw uses fixed random numbers
-            t = ndtri(plo + uni[..., 2 * k] * (phi - plo))
-            accept = reg & ~done & (uni[..., 2 * k + 1] * (1.0 + t / m) < 1.0 - _TRUNC / m)
-            out = np.where(accept, mu + s * t, out)
-            done |= accept
-        rest = ~done
+        # a fixed number of rounds, so each draw uses fixed random numbers; a
+        # round is computed only for the draws still pending (most accept in the first)
+        todo = np.flatnonzero(reg)
+        mu_f, s_f, m_f, out_f = mu.ravel(), s.ravel(), m.ravel(), out.reshape(-1)
+        uni_f = uni.reshape(-1, uni.shape[-1])
+        for k in range(_ROUNDS):
+            if not todo.size:
+                break
+            t = ndtri(plo + uni_f[todo, 2 * k] * (phi - plo))
+            accept = uni_f[todo, 2 * k + 1] * (1.0 + t / m_f[todo]) < 1.0 - _TRUNC / m_f[todo]
+            hit = todo[accept]
+            out_f[hit] = mu_f[hit] + s_f[hit] * t[accept]
+            todo = todo[~accept]
+        rest = ~reg.ravel()
+        rest[todo] = True  # rejected in every round: the inverse-CDF fallback
+        rest = rest.reshape(mu.shape)
         if rest.any():
             out[rest] = self._inverse_cdf(mu[rest], s[rest], uni[..., -1][rest])
         return np.clip(out, self.a_lo, self.a_hi)

@@ -30,6 +30,7 @@ import numpy as np
 from astropy.table import Table
 from scipy.interpolate import CubicSpline, RectBivariateSpline
 
+from .._numerics import TensorSpline
 from ..errors import GridWarning, InputError
 from ..likelihood import Calibration
 from ..photometry import prepare
@@ -189,6 +190,7 @@ class GridPosterior:
         self._log_node_prior = np.where(valid, lp, -np.inf)
         self._log_node_density = self._log_node_prior - np.log(wT * wb)
         self._spline = None
+        self._tensor = None
         self._nodes = None
 
     def nodes(self):
@@ -228,6 +230,23 @@ class GridPosterior:
         else:
             lg = spl(x)
         return np.exp(lg)
+
+    def templates_on(self, lnT, beta=None):
+        """Band fluxes (amplitude 10**0) on one tensor grid per row: (k, n) x (k, m) -> (k, n m, n_bands).
+
+        The same spline as :meth:`templates_at` at the points
+        ``(repeat(lnT, m), tile(beta, n))`` of each row (T-major order), to
+        rounding, evaluated by :class:`~sedtemp._numerics.TensorSpline`
+        (batched matrix products instead of one spline call per band).
+        """
+        x = np.clip(lnT, np.log(self.T_nodes[0]), np.log(self.T_nodes[-1]))
+        if not self.has_beta:
+            return np.exp(self.template_spline()(x))
+        if self._tensor is None:
+            self._tensor = TensorSpline(self.template_spline())
+        y = np.clip(beta, self.beta_nodes[0], self.beta_nodes[-1])
+        lg = self._tensor.on_grids(x, y)
+        return np.exp(lg.reshape(lg.shape[0], -1, lg.shape[-1]))
 
     def zoomed(self, T_range, beta_range=None, *, n_nodes=25):
         """A finer grid over one window (shared by all sources), band fluxes from :meth:`templates_at`."""

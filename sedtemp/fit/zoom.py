@@ -172,7 +172,7 @@ def window_nodes(grid, centre, half, n=_ZOOM_NODES):
     be = _edges(bn) if grid.has_beta else np.full((k, 2), np.nan)
     LT = np.repeat(lt, bn.shape[1], axis=1)
     B = np.tile(bn, (1, n))
-    g = grid.templates_at(LT, B if grid.has_beta else None)
+    g = grid.templates_on(lt, bn if grid.has_beta else None)
     theta = grid.theta_of(np.exp(LT).ravel(), B.ravel())
     valid = np.asarray(grid.model.valid(theta), bool).reshape(LT.shape) & np.all(np.isfinite(g), axis=-1)
     wT = np.diff(np.exp(lte), axis=1)
