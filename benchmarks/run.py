@@ -406,7 +406,7 @@ def print_table(rows):
         if len(line) != len(head):
             print(f"{line[0]:<{widths[0]}}  {line[1]} (target {line[2]})")
             continue
-        print("  ".join(f"{x!s:<{w}}" if i == 0 else f"{x!s:>{w}}" for i, (x, w) in enumerate(zip(line, widths))))
+        print("  ".join(f"{x!s:<{w}}" if i == 0 else f"{x!s:>{w}}" for i, (x, w) in enumerate(zip(line, widths, strict=True))))
         if k == 0:
             print("  ".join("-" * w for w in widths))
 
