@@ -120,7 +120,7 @@ def end_to_end_one(nu, flux, err, u_field, seed=0, n_draws=100, field_sd=0.2):
     rng = np.random.default_rng(seed + 1)
     pick = fit["samples"][rng.choice(len(fit["samples"]), n_draws, replace=False)]
     u_draws = u_field * np.exp(field_sd * rng.standard_normal(n_draws))
-    t_eq = np.array([t_eq_one(b, uu) for b, uu in zip(pick[:, 2], u_draws)])
+    t_eq = np.array([t_eq_one(b, uu) for b, uu in zip(pick[:, 2], u_draws, strict=True)])
     return {"p_warmer": float(np.mean(pick[:, 1] > t_eq)), "t_eq_median": float(np.median(t_eq)),
             "seconds": time.perf_counter() - t0}
 

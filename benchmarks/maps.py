@@ -30,6 +30,7 @@ from sedtemp.bands import Band, BandSet
 from sedtemp.maps import default_map_model, fit_maps
 from sedtemp.maps.demo import DEMO_BANDS, demo_wcs, truth_maps
 from sedtemp.maps.fitting import _grid
+from sedtemp.simulate import simulate_photometry
 
 _PIX_ARCSEC = 12.0 * 48 / 1000  # the demo field, 1000 pixels across at 1000 x 1000
 
@@ -44,12 +45,12 @@ def _images(n, seed):
     images, errors, bands = {}, {}, []
     for name, (lam, fwhm, _pix, sig) in DEMO_BANDS.items():
         band = Band.monochromatic(name, lam * u.um)
-        bs = BandSet([band])
-        inten = bs.band_fluxes(model.sed_si(bs.nu_grid_hz, theta))[:, 0].reshape(n, n) / 1e-20
+        # the pixels as sources of one band: intensity (MJy/sr) plus white noise of sd sig
+        inten, _, _ = simulate_photometry(BandSet([band]), model, theta, sigma=sig, seed=rng, unit_si=1e-20)
         hdr = wcs.to_header()
         hdr["BUNIT"] = "MJy/sr"
         hdr["BMAJ"] = hdr["BMIN"] = max(fwhm, 2.5 * pix) / 3600.0
-        images[name] = fits.ImageHDU((inten + sig * rng.standard_normal((n, n))).astype(np.float32), header=hdr)
+        images[name] = fits.ImageHDU(inten[:, 0].reshape(n, n).astype(np.float32), header=hdr)
         errors[name] = sig * u.MJy / u.sr
         bands.append(band)
     return images, errors, BandSet(bands)

@@ -63,6 +63,7 @@ import baseline
 
 from sedtemp import Band, BandSet, Calibration, ModifiedBlackbody, fit_source
 from sedtemp.fit.grid import GridPosterior
+from sedtemp.simulate import simulate_photometry
 
 WAVELENGTHS_UM = (70, 100, 160, 250, 350, 500)
 CAL_GROUPS = {"short": (["b70", "b100", "b160"], 0.07), "long": (["b250", "b350", "b500"], 0.055)}
@@ -86,12 +87,7 @@ def make_model():
 def simulate(model, bands, n, rng):
     """n sources: truths, band-integrated fluxes with noise at SNR 20 and calibration offsets (Jy)."""
     theta = np.column_stack([rng.uniform(-0.5, 0.5, n), rng.uniform(12.0, 35.0, n), rng.uniform(1.3, 2.2, n)])
-    m = bands.band_fluxes(model.sed_si(bands.nu_grid_hz, theta)) / JY
-    err = m / SNR
-    f = m + err * rng.standard_normal(m.shape)
-    for members, frac in CAL_GROUPS.values():
-        idx = [bands.names.index(b) for b in members]
-        f[:, idx] += m[:, idx] * frac * rng.standard_normal((n, 1))
+    f, err, _ = simulate_photometry(bands, model, theta, snr=SNR, calibration=CAL_GROUPS, seed=rng, unit_si=JY)
     return theta, f, err
 
 
@@ -410,7 +406,7 @@ def print_table(rows):
         if len(line) != len(head):
             print(f"{line[0]:<{widths[0]}}  {line[1]} (target {line[2]})")
             continue
-        print("  ".join(f"{x!s:<{w}}" if i == 0 else f"{x!s:>{w}}" for i, (x, w) in enumerate(zip(line, widths))))
+        print("  ".join(f"{x!s:<{w}}" if i == 0 else f"{x!s:>{w}}" for i, (x, w) in enumerate(zip(line, widths, strict=True))))
         if k == 0:
             print("  ".join("-" * w for w in widths))
 

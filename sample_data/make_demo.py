@@ -21,7 +21,10 @@ The scenario is made up for the demo, and every number in it is ours:
 
 Fluxes are the band-integrated thin modified blackbody (sedtemp's own band
 and model code) with 5 % noise, a flux floor, and shared calibration offsets
-(5 % for the three short bands, 4 % for the three long ones). Some sources
+(5 % for the three short bands, 4 % for the three long ones), made by
+``sedtemp.simulate.simulate_photometry``: the offsets scale the model fluxes
+and the noise is added on top, the model the likelihood's calibration
+covariance describes. Some sources
 lack the 70 um band, faint 70 um fluxes become 3-sigma upper limits, and a
 few sources have only two bands (the pipeline must skip them with a reason).
 
@@ -197,18 +200,20 @@ def _temperatures(rng, sep_pc, beta, classes):
 
 
 def _photometry(rng, theta, band_files):
-    """Noisy band fluxes (mJy) through the written response curves, as the workflow reads them."""
+    """Noisy band fluxes (mJy) through the written response curves, as the workflow reads them.
+
+    sedtemp's one simulator: 5 % noise with the flux floor added in quadrature,
+    one calibration offset per group and source scaling the model fluxes.
+    """
     from sedtemp.bands import Band, BandSet
     from sedtemp.models import ModifiedBlackbody
+    from sedtemp.simulate import simulate_photometry
 
     model = ModifiedBlackbody(opacity(), distance=DISTANCE_PC * u.pc)
     bs = BandSet([Band.from_file(n, band_files[n]) for n in BANDS])
-    true = bs.band_fluxes(model.sed_si(bs.nu_grid_hz, theta)) / 1e-29  # mJy
-    err = np.sqrt((NOISE_FRACTION * true) ** 2 + FLUX_FLOOR_MJY**2)
-    flux = true + err * rng.standard_normal(true.shape)
-    for g, frac in CALIBRATION.items():
-        idx = [j for j, (_, _, grp) in enumerate(BANDS.values()) if grp == g]
-        flux[:, idx] *= 1.0 + frac * rng.standard_normal((flux.shape[0], 1))
+    groups = {g: ([n for n, (_, _, grp) in BANDS.items() if grp == g], frac) for g, frac in CALIBRATION.items()}
+    flux, err, _ = simulate_photometry(bs, model, theta, snr=1.0 / NOISE_FRACTION, floor=FLUX_FLOOR_MJY,
+                                       calibration=groups, seed=rng, unit_si=1e-29)
     return flux, err
 
 

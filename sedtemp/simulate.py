@@ -9,6 +9,11 @@ every band's error is the same fraction of the source's *peak* band flux,
 err = peak / depth, so fainter bands have lower S/N, as in a real survey of
 fixed sensitivity) or as the errors themselves (``sigma``: given 1-sigma
 errors per band, e.g. one fixed error per band for a whole population).
+A noise floor (``floor``) can be added in quadrature to any of the three.
+
+Calibration offsets multiply the *model* fluxes, and the noise is added
+after them: flux = m (1 + delta_g) + err * z, the model whose marginal is
+the covariance diag(err^2) + d_g^2 m m^T of the likelihood.
 """
 
 from __future__ import annotations
@@ -35,6 +40,7 @@ JY_SI = 1e-26
 
 def simulate_photometry(bands: BandSet, model: Any, theta: ArrayLike, *, snr: ArrayLike | None = None,
                         depth: ArrayLike | None = None, sigma: ArrayLike | None = None,
+                        floor: ArrayLike | None = None,
                         calibration: Any = None,  # model, calibration: inference-layer types
                         seed: SeedLike = None, unit_si: float = JY_SI
                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -53,6 +59,11 @@ def simulate_photometry(bands: BandSet, model: Any, theta: ArrayLike, *, snr: Ar
     sigma : float or array_like (n_bands,) or (n, n_bands), keyword-only
         The 1-sigma errors themselves, in ``unit_si``.
         Exactly one of ``snr``, ``depth`` and ``sigma`` is given.
+    floor : float or array_like (n_bands,) or (n, n_bands), keyword-only
+        Noise floor in ``unit_si``, added in quadrature to the error of
+        ``snr``, ``depth`` or ``sigma``: err = sqrt(err_0**2 + floor**2)
+        (e.g. a fractional error plus a confusion or sensitivity limit).
+        Default: none.
     calibration : mapping name -> (band names, fraction), keyword-only
         Calibration groups: one shared factor (1 + fraction * N(0, 1)) per
         group and source multiplies the model fluxes of its bands.
@@ -94,6 +105,8 @@ def simulate_photometry(bands: BandSet, model: Any, theta: ArrayLike, *, snr: Ar
     else:
         err = np.broadcast_to(m.max(axis=1, keepdims=True) / np.reshape(np.asarray(depth, float), (-1, 1)),
                               m.shape).copy()
+    if floor is not None:
+        err = np.hypot(err, np.asarray(floor, float))
     f = m + err * rng.standard_normal(m.shape)
     if calibration is not None:
         groups = calibration.groups if hasattr(calibration, "groups") else calibration

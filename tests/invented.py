@@ -6,6 +6,7 @@ from astropy.table import Table
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
+from sedtemp.simulate import simulate_photometry
 
 #: Bands of the invented catalogue used by the pipeline and CLI tests.
 CATALOG_WAVE = (70, 160, 250, 350, 500)
@@ -20,13 +21,12 @@ def invented_catalog(n, seed, unit=u.Jy):
     bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in CATALOG_WAVE])
     rng = np.random.default_rng(seed)
     theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
-    f = (bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta))
-         * (u.W / u.m**2 / u.Hz)).to_value(unit)
-    e = 0.08 * f
+    f, e, _ = simulate_photometry(bs, ModifiedBlackbody(distance=400 * u.pc), theta, snr=1 / 0.08, seed=rng,
+                                  unit_si=(1 * unit).to_value(u.W / u.m**2 / u.Hz))
     t = Table()
     t["name"] = [f"S{i:03d}" for i in range(n)]
     for j, w in enumerate(CATALOG_WAVE):
-        t[f"F{w}"] = (f[:, j] + e[:, j] * rng.standard_normal(n)) * unit
+        t[f"F{w}"] = f[:, j] * unit
         t[f"E{w}"] = e[:, j] * unit
     return t
 

@@ -16,6 +16,7 @@ from sedtemp.pipeline import stages
 from sedtemp.pipeline.batch import InlineExecutor, run_batch
 from sedtemp.pipeline.catalog import map_catalog
 from sedtemp.pipeline.config import parse_workflow
+from sedtemp.simulate import simulate_photometry
 
 WAVE = (70, 160, 250, 350, 500)
 
@@ -26,9 +27,7 @@ def make_catalog(n, seed=3):
     model = ModifiedBlackbody(distance=400 * u.pc)
     rng = np.random.default_rng(seed)
     theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
-    f = bs.band_fluxes(model.sed_si(bs.nu_grid_hz, theta)) / 1e-26
-    e = 0.08 * f
-    f = f + e * rng.standard_normal(f.shape)
+    f, e, _ = simulate_photometry(bs, model, theta, snr=1 / 0.08, seed=rng)
     t = Table()
     t["name"] = [f"S{i:03d}" for i in range(n)]
     for j, w in enumerate(WAVE):
