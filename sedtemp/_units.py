@@ -18,14 +18,17 @@ __all__: list[str] = []  # private module (its helpers are used across sedtemp)
 _FLUX_SI = u.W / u.m**2 / u.Hz
 
 
+def _as_float_array(value, name):
+    try:
+        return np.asarray(value, dtype=float)
+    except (TypeError, ValueError) as err:
+        raise InputError(f"{name}: cannot read {value!r} as a number") from err
+
+
 def _as_quantity(value, default_unit, name):
     if isinstance(value, u.Quantity):
         return value
-    try:
-        arr = np.asarray(value, dtype=float)
-    except (TypeError, ValueError) as err:
-        raise InputError(f"{name}: cannot read {value!r} as a number") from err
-    return arr * default_unit
+    return _as_float_array(value, name) * default_unit
 
 
 def to_hz(value, *, default_unit=u.um, name="frequency"):
@@ -41,6 +44,8 @@ def to_hz(value, *, default_unit=u.um, name="frequency"):
 
 def to_si(value, unit, *, default_unit=None, name="value"):
     """Convert ``value`` to the SI ``unit``; bare numbers are in ``default_unit`` (or ``unit``)."""
+    if not isinstance(value, u.Quantity) and (default_unit is None or default_unit is unit):
+        return _as_float_array(value, name)  # a bare number already in the SI unit
     q = _as_quantity(value, default_unit if default_unit is not None else unit, name)
     try:
         return np.asarray(q.to_value(unit), dtype=float)
@@ -50,11 +55,12 @@ def to_si(value, unit, *, default_unit=None, name="value"):
 
 def to_kelvin(value, *, name="temperature"):
     """Temperature (Quantity in K/deg_C, or bare number in K) -> K array."""
-    q = _as_quantity(value, u.K, name)
+    if not isinstance(value, u.Quantity):
+        return _as_float_array(value, name)  # a bare number is in K
     try:
-        return np.asarray(q.to_value(u.K, equivalencies=u.temperature()), dtype=float)
+        return np.asarray(value.to_value(u.K, equivalencies=u.temperature()), dtype=float)
     except u.UnitConversionError as err:
-        raise InputError(f"{name}: unit {q.unit} is not a temperature") from err
+        raise InputError(f"{name}: unit {value.unit} is not a temperature") from err
 
 
 def to_flux_si(value, *, name="flux"):

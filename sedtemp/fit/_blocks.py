@@ -15,7 +15,7 @@ from scipy.interpolate import CubicSpline
 
 from ..errors import InputError
 from ..likelihood import calibrated_chi2
-from .summary import POOR_FIT_PPP, QUANTILES, trust_flags
+from .summary import POOR_FIT_PPP, QUANTILES, trust_masks
 
 __all__: list[str] = []
 
@@ -91,6 +91,14 @@ class Nodes:
     @property
     def n_beta(self):
         return self.beta.shape[1]
+
+    def rows(self, sl):
+        """The nodes of the sources ``sl`` (a slice) of per-source nodes."""
+        def cut(a):
+            return a if a.shape[0] == 1 else a[sl]
+        return Nodes(lt=cut(self.lt), lt_edges=cut(self.lt_edges), beta=cut(self.beta),
+                     beta_edges=cut(self.beta_edges), g=self.g if self.g.ndim == 2 else self.g[sl],
+                     log_prior=cut(self.log_prior), log_density=cut(self.log_density), affine=self.affine)
 
     def g_at(self, node):
         """Band fluxes (ns, n, nb) of node indices (ns, n)."""
@@ -235,15 +243,16 @@ class BlockSummary:
         failed = self.zoom_failed if self.zoom_failed is not None else np.zeros(self.ok.size, bool)
         too_coarse = (self.narrow(grid, coarse) | failed) & self.ok
         w = np.ones(self.draws["T"].shape[1])
-        flags = []
         pT, pb = grid.prior["T"], grid.prior["beta"] if grid.has_beta else None
-        for i in range(self.ok.size):  # per-source bookkeeping on a few hundred draws
+        masks = trust_masks("T", self.draws["T"], w, pT.low, pT.high, grid.sd_T)
+        if pb is not None:
+            masks.update(trust_masks("beta", self.draws["beta"], w, pb.low, pb.high, grid.sd_beta))
+        flags = []
+        for i in range(self.ok.size):  # per-source bookkeeping of the flag masks
             if not self.ok[i]:
                 flags.append(("no_valid_grid_node",))
                 continue
-            fl = trust_flags("T", self.draws["T"][i], w, pT.low, pT.high, grid.sd_T)
-            if pb is not None:
-                fl += trust_flags("beta", self.draws["beta"][i], w, pb.low, pb.high, grid.sd_beta)
+            fl = [k for k, m in masks.items() if m[i]]
             if too_coarse[i]:
                 fl.append("grid_too_coarse")
             # a failed zoom check is the grid's fault, not the model's: no 'poor_fit' then

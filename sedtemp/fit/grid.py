@@ -53,6 +53,8 @@ _COARSE = 0.3
 _REFINE = 0.5
 #: Nodes whose log likelihood x prior is this far below a source's best node get
 #: a leading-order amplitude integral (their mass is < e^-40 relative).
+#: (source, node) elements per sub-block of :meth:`GridPosterior.log_posterior` (~400 kB arrays).
+_CACHE_ELEMENTS = 50_000
 _RELEVANT = 40.0
 #: Half-width, in prior sd, of the beta grid when the beta prior is unbounded.
 _UNBOUNDED_SPAN = 5.0
@@ -222,14 +224,17 @@ class GridPosterior:
         nodes (~1e-5 relative to the model, tested); points are clipped to
         the grid's span.
         """
-        spl = self.template_spline()
         x = np.clip(lnT, np.log(self.T_nodes[0]), np.log(self.T_nodes[-1]))
-        if self.has_beta:
-            y = np.clip(beta, self.beta_nodes[0], self.beta_nodes[-1])
-            lg = np.stack([s.ev(x.ravel(), y.ravel()).reshape(x.shape) for s in spl], axis=-1)
-        else:
-            lg = spl(x)
-        return np.exp(lg)
+        if not self.has_beta:
+            return np.exp(self.template_spline()(x))
+        y = np.clip(beta, self.beta_nodes[0], self.beta_nodes[-1])
+        return np.exp(self._tensor_spline()(x, y))
+
+    def _tensor_spline(self):
+        """All bands' splines of :meth:`template_spline` as one :class:`~sedtemp._numerics.TensorSpline`."""
+        if self._tensor is None:
+            self._tensor = TensorSpline(self.template_spline())
+        return self._tensor
 
     def templates_on(self, lnT, beta=None):
         """Band fluxes (amplitude 10**0) on one tensor grid per row: (k, n) x (k, m) -> (k, n m, n_bands).
@@ -242,10 +247,8 @@ class GridPosterior:
         x = np.clip(lnT, np.log(self.T_nodes[0]), np.log(self.T_nodes[-1]))
         if not self.has_beta:
             return np.exp(self.template_spline()(x))
-        if self._tensor is None:
-            self._tensor = TensorSpline(self.template_spline())
         y = np.clip(beta, self.beta_nodes[0], self.beta_nodes[-1])
-        lg = self._tensor.on_grids(x, y)
+        lg = self._tensor_spline().on_grids(x, y)
         return np.exp(lg.reshape(lg.shape[0], -1, lg.shape[-1]))
 
     def zoomed(self, T_range, beta_range=None, *, n_nodes=25):
@@ -292,6 +295,14 @@ class GridPosterior:
             log posterior mass, amplitude mean and sd given the node, chi^2 at a_hat.
         """
         nodes = self.nodes() if nodes is None else nodes
+        step = max(1, _CACHE_ELEMENTS // nodes.g.shape[-2])
+        if flux.shape[0] > step:
+            # sub-blocks of sources whose (source, node) arrays stay in cache: the
+            # elementwise work is several times faster than on one large array
+            parts = [self.log_posterior(flux[i:i + step], err[i:i + step], limit_only[i:i + step],
+                                        nodes if nodes.g.ndim == 2 else nodes.rows(slice(i, i + step)))
+                     for i in range(0, flux.shape[0], step)]
+            return tuple(np.concatenate(p) for p in zip(*parts, strict=True))
         det = ~limit_only & np.isfinite(err)
         iv = np.where(det, 1.0 / np.where(np.isfinite(err), err, 1.0) ** 2, 0.0)
         F = np.where(det, flux, 0.0)

@@ -60,18 +60,30 @@ def weighted_quantiles(x, w, probs):
     return out
 
 
-def trust_flags(name, x, w, low, high, prior_sd):
-    """Flags for one parameter from weighted draws (1-D): edge pile-up, prior domination."""
-    flags = []
-    w = w / w.sum()
+def trust_masks(name, x, w, low, high, prior_sd):
+    """Trust flags of one parameter from weighted draws along the last axis, as boolean masks.
+
+    Returns
+    -------
+    dict flag name -> ndarray of bool (x.shape[:-1]), in reporting order:
+    edge pile-up (``{name}_at_prior_low``, ``{name}_at_prior_high``) and
+    prior domination (``{name}_prior_dominated``).
+    """
+    x = np.asarray(x, float)
+    w = np.broadcast_to(w, x.shape)
+    w = w / w.sum(axis=-1, keepdims=True)
+    out = {}
     if np.isfinite(low) and np.isfinite(high):
         strip = EDGE_FRACTION * (high - low)
-        if w[x <= low + strip].sum() > EDGE_MASS:
-            flags.append(f"{name}_at_prior_low")
-        if w[x >= high - strip].sum() > EDGE_MASS:
-            flags.append(f"{name}_at_prior_high")
-    mean = np.sum(w * x)
-    sd = np.sqrt(np.sum(w * (x - mean) ** 2))
-    if np.isfinite(prior_sd) and prior_sd > 0 and sd > PRIOR_WIDTH_RATIO * prior_sd:
-        flags.append(f"{name}_prior_dominated")
-    return flags
+        out[f"{name}_at_prior_low"] = np.sum(np.where(x <= low + strip, w, 0.0), axis=-1) > EDGE_MASS
+        out[f"{name}_at_prior_high"] = np.sum(np.where(x >= high - strip, w, 0.0), axis=-1) > EDGE_MASS
+    mean = np.sum(w * x, axis=-1, keepdims=True)
+    sd = np.sqrt(np.sum(w * (x - mean) ** 2, axis=-1))
+    wide = np.isfinite(prior_sd) and prior_sd > 0
+    out[f"{name}_prior_dominated"] = (sd > PRIOR_WIDTH_RATIO * prior_sd) if wide else np.zeros(sd.shape, bool)
+    return out
+
+
+def trust_flags(name, x, w, low, high, prior_sd):
+    """Flags for one parameter from weighted draws (1-D): edge pile-up, prior domination."""
+    return [k for k, v in trust_masks(name, x, w, low, high, prior_sd).items() if v]
