@@ -28,7 +28,7 @@ da Cunha et al. (2013).
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
@@ -585,7 +585,7 @@ class TwoTemperatureModel(SEDModel):
                  distance: u.Quantity | float | None = None, solid_angle: u.Quantity | float | None = None,
                  beta: float | None = None) -> None:
         if cold is None and warm is None:
-            opts = {"opacity": opacity, "amplitude": amplitude, "distance": distance, "solid_angle": solid_angle,
+            opts: dict[str, Any] = {"opacity": opacity, "amplitude": amplitude, "distance": distance, "solid_angle": solid_angle,
                     "redshift": 0.0 if redshift is None else redshift, "beta": beta}
             cold, warm = ModifiedBlackbody(**opts), ModifiedBlackbody(**opts)
         elif cold is None or warm is None:

@@ -300,11 +300,11 @@ class Blackbody(RadiationField):
     def scaled(self, factor: float) -> RadiationField:
         return Blackbody(self.temperature_k, self.dilution * _check_factor(factor))
 
-    def unit_spectrum(self):
+    def unit_spectrum(self) -> tuple[tuple[Any, ...], RadiationField, float]:
         # a star, the CMB and a diluted blackbody of one temperature share B_nu(T)
         return ("blackbody", self.temperature_k), Blackbody(self.temperature_k), self.dilution
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Blackbody({self.temperature_k:g} K, dilution={self.dilution:.4g})"
 
 
@@ -529,8 +529,9 @@ class SumField(RadiationField):
     def components(self) -> list[RadiationField]:
         return list(self._components)
 
-    def mean_intensity_si(self, nu_hz):  # the base signature; 0 for a sum of no components
-        return sum(c.mean_intensity_si(nu_hz) for c in self._components)
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
+        # sum() is typed as possibly its start value 0; __init__ ensures >= 1 component
+        return sum(c.mean_intensity_si(nu_hz) for c in self._components)  # type: ignore[return-value]
 
     def scaled(self, factor: float) -> RadiationField:
         return SumField([c.scaled(factor) for c in self._components])
