@@ -585,8 +585,9 @@ class TwoTemperatureModel(SEDModel):
                  distance: u.Quantity | float | None = None, solid_angle: u.Quantity | float | None = None,
                  beta: float | None = None) -> None:
         if cold is None and warm is None:
-            opts: dict[str, Any] = {"opacity": opacity, "amplitude": amplitude, "distance": distance, "solid_angle": solid_angle,
-                    "redshift": 0.0 if redshift is None else redshift, "beta": beta}
+            opts: dict[str, Any] = {"opacity": opacity, "amplitude": amplitude, "distance": distance,
+                                    "solid_angle": solid_angle,
+                                    "redshift": 0.0 if redshift is None else redshift, "beta": beta}
             cold, warm = ModifiedBlackbody(**opts), ModifiedBlackbody(**opts)
         elif cold is None or warm is None:
             raise InputError("TwoTemperatureModel: give both cold= and warm= components, or neither "

@@ -86,7 +86,8 @@ def _field_of_row(field, table, i):
                      f"sequence of {len(table)} fields")
 
 
-def compare_table(table: Table, field: RadiationField | Callable[[Row], RadiationField] | Sequence[RadiationField],
+def compare_table(table: Table,
+                  field: RadiationField | Callable[[Row], RadiationField] | Sequence[RadiationField],
                   opacity: Opacity, *, draws: Mapping[Any, Any] | None = None, id_column: str = "id",
                   flags_column: str | None = "flags",
                   field_uncertainty: FieldUncertaintySpec | Callable[[Row], FieldUncertaintySpec] = None,

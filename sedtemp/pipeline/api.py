@@ -61,7 +61,8 @@ def _public(tab):
     return tab[[c for c in tab.colnames if not c.startswith("_")]]
 
 
-def fit(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *, n_keep: int | None = None) -> Table:
+def fit(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *,
+        n_keep: int | None = None) -> Table:
     """Fit stage alone: posterior summaries, diagnostics and (optionally) draws per source.
 
     Parameters
@@ -82,7 +83,8 @@ def fit(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflo
     return _public(process_chunk(workflow, mapped, stages=("fit",), n_keep=n_keep))
 
 
-def predict(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *, fits: Table | None = None) -> Table:
+def predict(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *,
+            fits: Table | None = None) -> Table:
     """Predict stage alone: T_eq of each source's field at beta (the fitted median if ``fits`` is given).
 
     Returns
@@ -135,7 +137,8 @@ def compare(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Wor
     return _public(assemble(mapped, [column_rows(cols, n)], status, reason, workflow=workflow))
 
 
-def run(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *, executor: cf.Executor | None = None,
+def run(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *,
+        executor: cf.Executor | None = None,
         output_dir: str | os.PathLike[str] | None = None, progress: bool = False) -> Table:
     """fit -> predict -> compare over a whole catalogue; the results table.
 

@@ -121,7 +121,8 @@ def source_flags(ess: np.ndarray, usable: np.ndarray, min_ess: float, what: str)
     return flags
 
 
-def infer_population(samples: ArrayLike, *, interim_prior: Prior | Sequence[Any] | Callable[..., np.ndarray] | None = None,
+def infer_population(samples: ArrayLike, *,
+                     interim_prior: Prior | Sequence[Any] | Callable[..., np.ndarray] | None = None,
                      model: str | Any = "gaussian", seed: int | None = 0,
                      n_walkers: int = 32, n_steps: int = DEFAULT_N_STEPS, min_ess: float = DEFAULT_MIN_ESS,
                      source_ids: Sequence | None = None) -> PopulationResult:

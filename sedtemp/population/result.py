@@ -144,7 +144,8 @@ class PopulationResult:
         w[usable] = importance_weights(like, thin_for_weights(self.samples))[0]
         return w
 
-    def shrunk(self, samples: ArrayLike | None = None, *, n_draws: int | None = None, seed: int = 0) -> np.ndarray:
+    def shrunk(self, samples: ArrayLike | None = None, *, n_draws: int | None = None,
+               seed: int = 0) -> np.ndarray:
         """Per-source draws resampled with the population weights (the shrinkage estimates).
 
         Parameters
