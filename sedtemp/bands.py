@@ -29,6 +29,7 @@ from pathlib import Path
 
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._numerics import trapezoid_weights
 from ._units import to_hz
@@ -300,12 +301,12 @@ class Band:
     def __init__(
         self,
         name: str,
-        nu_or_wavelength,
-        response,
+        nu_or_wavelength: u.Quantity | ArrayLike,
+        response: u.Quantity | ArrayLike,
         *,
         detector: str = "energy",
         reference: str | float = "nu_fnu",
-        reference_wavelength=None,
+        reference_wavelength: u.Quantity | float | None = None,
     ) -> None:
         name = _check_name(name)
         power = _detector_power(detector, name)
@@ -340,7 +341,7 @@ class Band:
     # -- constructors -------------------------------------------------------
 
     @classmethod
-    def monochromatic(cls, name: str, wavelength) -> Band:
+    def monochromatic(cls, name: str, wavelength: u.Quantity | float) -> Band:
         """A band that quotes the spectrum's value at one wavelength.
 
         Parameters
@@ -650,7 +651,7 @@ class BandSet:
         self.nu_grid_hz = _readonly(grid)
         self.weights = _readonly(weights)
 
-    def band_fluxes(self, spectrum_on_grid) -> np.ndarray:
+    def band_fluxes(self, spectrum_on_grid: u.Quantity | ArrayLike) -> np.ndarray:
         """Quoted band fluxes of spectra sampled on :attr:`nu_grid_hz`.
 
         Parameters
@@ -669,7 +670,9 @@ class BandSet:
             If the last axis is not n_grid long.
         """
         unit = spectrum_on_grid.unit if isinstance(spectrum_on_grid, u.Quantity) else None
-        s = np.asarray(spectrum_on_grid.value if unit is not None else spectrum_on_grid, dtype=float)
+        # Quantity is Any to mypy, so the isinstance test above does not narrow the union
+        s = np.asarray(spectrum_on_grid.value if unit is not None else spectrum_on_grid,  # type: ignore[union-attr]
+                       dtype=float)
         if s.ndim == 0 or s.shape[-1] != self.nu_grid_hz.size:
             raise InputError(
                 f"spectrum_on_grid must have last axis of length n_grid = "
@@ -732,7 +735,7 @@ class BandSet:
     def __iter__(self) -> Iterator[Band]:
         return iter(self.bands)
 
-    def __contains__(self, name) -> bool:
+    def __contains__(self, name: object) -> bool:
         return name in self._index
 
     def __repr__(self) -> str:

@@ -55,6 +55,7 @@ import argparse
 import sys
 import time
 import traceback
+from collections.abc import Sequence
 from dataclasses import replace
 from pathlib import Path
 
@@ -559,7 +560,7 @@ _COMMANDS = {"init": _cmd_init, "check": _cmd_check, "run": _cmd_run, "fit": _cm
 _RESUMABLE = ("run", "demo", "map")
 
 
-def main(argv=None) -> int:
+def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``sedtemp`` command; returns the exit status.
 
     Parameters

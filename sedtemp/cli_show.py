@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 
 from ._units import group_causes
@@ -13,6 +15,12 @@ from .inspect_workflow import (
     t_eq_range,
     time_estimate,
 )
+
+if TYPE_CHECKING:
+    from astropy.table import Row, Table
+
+    from .pipeline.catalog import MappedCatalog
+    from .pipeline.config import Workflow
 
 __all__ = ["format_seconds", "show", "source_report"]
 
@@ -32,7 +40,8 @@ def format_seconds(s: float) -> str:
     return f"{s / 3600:.1f} h"
 
 
-def show(wf, tab, mapped, *, max_sources: int = 200, n_timed: int = 3) -> str:
+def show(wf: Workflow, tab: Table, mapped: MappedCatalog, *, max_sources: int = 200,
+         n_timed: int = 3) -> str:
     """The dry-run text of ``sedtemp check --show``."""
     units = {spec["flux"]: str(tab[spec["flux"]].unit) for spec in wf.bands.values()
              if spec["flux"] in tab.colnames and tab[spec["flux"]].unit is not None}
@@ -96,7 +105,7 @@ def _value(row, name):
     return float(getattr(v, "value", v))
 
 
-def source_report(row, wf) -> str:
+def source_report(row: Row, wf: Workflow) -> str:
     """The summary table, prediction and verdict of one fitted source (a results row)."""
     idc = wf.catalog["id_column"]
     out = [f"source {row[idc]}: {row['method']} fit" + (f", {int(row['n_bands_used'])} band(s) used"

@@ -16,10 +16,12 @@ the stochastic-heating check are in :mod:`sedtemp.grains`.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
 from astropy.table import Table
+from numpy.typing import ArrayLike
 
 from ._units import to_kelvin, to_si
 from .absorption import (
@@ -32,6 +34,9 @@ from .emission import check_beta, emission_table
 from .errors import InputError
 from .planck import SIGMA_SB
 from .radiation import HABING_FLUX, ISRF, NU_6EV, NU_LYMAN, RadiationField, Star
+
+if TYPE_CHECKING:
+    from .opacity import Opacity
 
 __all__ = [
     "DEFAULT_NU_GRID_HZ",
@@ -64,7 +69,9 @@ def _absorbed(field, opacity, b, nu_grid, who):
     return p.reshape(b.shape + p.shape[-1:]), frac.reshape(b.shape)
 
 
-def absorbed_power(field, opacity, *, beta=None, nu_grid=None, per_component=False):
+def absorbed_power(field: RadiationField, opacity: Opacity, *, beta: ArrayLike | None = None,
+                   nu_grid: u.Quantity | ArrayLike | None = None,
+                   per_component: bool = False) -> np.ndarray:
     """Absorbed power per unit mass, 4 pi int kappa_nu J_nu dnu, in W kg^-1.
 
     Parameters
@@ -105,7 +112,8 @@ def absorbed_power(field, opacity, *, beta=None, nu_grid=None, per_component=Fal
     return p if per_component else p.sum(axis=-1)
 
 
-def emitted_power(temperature, opacity, *, beta=None):
+def emitted_power(temperature: u.Quantity | ArrayLike, opacity: Opacity, *,
+                  beta: ArrayLike | None = None) -> np.ndarray:
     """Emitted power per unit mass, 4 pi int kappa_nu B_nu(T) dnu, in W kg^-1.
 
     Parameters
@@ -134,7 +142,8 @@ def emitted_power(temperature, opacity, *, beta=None):
     return emission_table(opacity).power(t, b)
 
 
-def temperature_for_power(power_per_mass, opacity, *, beta=None):
+def temperature_for_power(power_per_mass: ArrayLike, opacity: Opacity, *,
+                          beta: ArrayLike | None = None) -> np.ndarray:
     """The temperature T (K) at which 4 pi int kappa_nu B_nu(T) dnu equals the given power.
 
     Parameters
@@ -174,7 +183,9 @@ def _check_scale(scale, who):
     return s
 
 
-def equilibrium_temperature(field, opacity, *, scale=None, beta=None, nu_grid=None):
+def equilibrium_temperature(field: RadiationField, opacity: Opacity, *, scale: ArrayLike | None = None,
+                            beta: ArrayLike | None = None,
+                            nu_grid: u.Quantity | ArrayLike | None = None) -> u.Quantity:
     """Radiative-equilibrium dust temperature in ``field``, as a Quantity in K.
 
     Parameters
@@ -229,7 +240,9 @@ def equilibrium_temperature(field, opacity, *, scale=None, beta=None, nu_grid=No
     return temperature_for_power(p, opacity, beta=b) * u.K
 
 
-def predict_chunk(fields: Sequence[RadiationField], opacity, beta, *, nu_grid=None, details: bool = False):
+def predict_chunk(fields: Sequence[RadiationField], opacity: Opacity, beta: ArrayLike, *,
+                  nu_grid: u.Quantity | ArrayLike | None = None,
+                  details: bool = False) -> np.ndarray | dict[str, np.ndarray]:
     """Equilibrium temperatures of a chunk of sources, one field each, in K (floats).
 
     Parameters
@@ -282,7 +295,8 @@ def predict_chunk(fields: Sequence[RadiationField], opacity, beta, *, nu_grid=No
 
 
 # ------------------------------------------------------- mean opacities
-def absorption_mean_opacity(field, opacity, *, beta=None, nu_grid=None):
+def absorption_mean_opacity(field: RadiationField, opacity: Opacity, *, beta: ArrayLike | None = None,
+                            nu_grid: u.Quantity | ArrayLike | None = None) -> u.Quantity:
     """Field-weighted mean opacity int kappa J dnu / int J dnu, a Quantity in cm^2 g^-1."""
     nu, w = frequency_grid(nu_grid)
     j_tot = float(w @ field.mean_intensity_si(nu))
@@ -292,7 +306,8 @@ def absorption_mean_opacity(field, opacity, *, beta=None, nu_grid=None):
     return (p / j_tot * _KAPPA_SI).to(u.cm**2 / u.g)
 
 
-def emission_mean_opacity(temperature, opacity, *, beta=None):
+def emission_mean_opacity(temperature: u.Quantity | ArrayLike, opacity: Opacity, *,
+                          beta: ArrayLike | None = None) -> u.Quantity:
     """Planck-mean opacity int kappa B_nu(T) dnu / int B_nu(T) dnu, a Quantity in cm^2 g^-1.
 
     Notes
@@ -307,7 +322,9 @@ def emission_mean_opacity(temperature, opacity, *, beta=None):
     return (k * _KAPPA_SI).to(u.cm**2 / u.g)
 
 
-def implied_U(temperature, opacity, base=None, *, beta=None, fixed=None, nu_grid=None):
+def implied_U(temperature: u.Quantity | ArrayLike, opacity: Opacity, base: RadiationField | None = None, *,
+              beta: ArrayLike | None = None, fixed: RadiationField | None = None,
+              nu_grid: u.Quantity | ArrayLike | None = None) -> np.ndarray:
     """The strength U of ``base`` that would heat the dust to ``temperature``.
 
     Parameters
@@ -394,9 +411,11 @@ def _row_fields(table, n, U_column, star, star_distance_column, A_V_column, extr
     return fields
 
 
-def predict_table(table, opacity, *, U_column=None, star=None, star_distance_column=None,
-                  A_V_column=None, extra=None, beta=None, beta_column=None,
-                  law="G23", R_V=3.1, nu_grid=None):
+def predict_table(table: Table, opacity: Opacity, *, U_column: str | None = None, star: Star | None = None,
+                  star_distance_column: str | None = None, A_V_column: str | None = None,
+                  extra: RadiationField | None = None, beta: float | None = None,
+                  beta_column: str | None = None, law: str | Any = "G23", R_V: float = 3.1,
+                  nu_grid: u.Quantity | ArrayLike | None = None) -> Table:
     """Equilibrium temperatures for a catalogue with per-source field parameters.
 
     The field of row i is ``U_i ISRF(1) + star(d_i) + extra``, all attenuated

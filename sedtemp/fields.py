@@ -14,6 +14,7 @@ from __future__ import annotations
 import functools
 from collections.abc import Callable, Mapping, Sequence
 from importlib.metadata import entry_points
+from typing import Any
 
 import astropy.units as u
 
@@ -34,7 +35,7 @@ BUILTIN_FIELDS: Mapping[str, Callable[..., radiation.RadiationField]] = {
 }
 
 
-def argument_value(value):
+def argument_value(value: Any) -> Any:
     """A field argument as a workflow gives it: a quantity string becomes a Quantity, the rest stays.
 
     Examples

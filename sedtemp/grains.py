@@ -110,7 +110,8 @@ class Grain:
     Draine, B. T., & Li, A. 2001, ApJ, 551, 807 (equations quoted from memory).
     """
 
-    def __init__(self, radius, *, material="silicate", density=None):
+    def __init__(self, radius: u.Quantity | float, *, material: str = "silicate",
+                 density: u.Quantity | float | None = None) -> None:
         if material not in _MATERIALS:
             raise InputError(f"Grain: material must be one of {sorted(_MATERIALS)}, got {material!r}")
         spec = _MATERIALS[material]
@@ -144,7 +145,7 @@ class Grain:
                              f"got per={opacity.per!r}")
         return self.mass_kg
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Grain(radius={self.radius_m * 1e6:.4g} um, material={self.material!r})"
 
 
@@ -162,7 +163,8 @@ class GasDustMedium:
         Gas-to-dust mass ratio (default 100, common practice).
     """
 
-    def __init__(self, density, *, mu=2.37, gas_to_dust=DEFAULT_GAS_TO_DUST):
+    def __init__(self, density: u.Quantity | float, *, mu: float = 2.37,
+                 gas_to_dust: float = DEFAULT_GAS_TO_DUST) -> None:
         self.n_si = float(to_si(density, u.m**-3, default_unit=u.cm**-3, name="density"))
         self.mu, self.gas_to_dust = float(mu), float(gas_to_dust)
         if not (self.n_si > 0 and self.mu > 0 and self.gas_to_dust > 0):
@@ -177,7 +179,7 @@ class GasDustMedium:
         """Mass per m^3 that the opacity refers to (gas or dust), kg m^-3."""
         return self.gas_density_si if opacity.per == "gas" else self.gas_density_si / self.gas_to_dust
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"GasDustMedium(n={self.n_si * 1e-6:.4g} cm-3, mu={self.mu:g})"
 
 

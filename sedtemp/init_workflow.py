@@ -23,8 +23,12 @@ import re
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import astropy.units as u
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["BandGuess", "Guess", "guess_columns", "template_text", "workflow_text"]
 
@@ -125,7 +129,7 @@ def _band_name(flux, used):
     return name
 
 
-def guess_columns(tab) -> Guess:
+def guess_columns(tab: Table) -> Guess:
     """Guess the id, position and band columns of a catalogue table.
 
     Parameters
@@ -233,7 +237,8 @@ def _set_line(text, key, value, *, uncomment=False):
     return text
 
 
-def workflow_text(catalog=None, *, workflow_path=None, table=None):
+def workflow_text(catalog: str | Path | None = None, *, workflow_path: str | Path | None = None,
+                  table: Table | None = None) -> tuple[str, Guess | None]:
     """The template, pre-filled from ``catalog`` when one is given; also the guesses made.
 
     Parameters

@@ -13,11 +13,17 @@ from __future__ import annotations
 
 import re
 import time
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
 
 from .errors import ConfigError
+
+if TYPE_CHECKING:
+    from .pipeline.catalog import MappedCatalog
+    from .pipeline.config import Workflow
 
 __all__ = [
     "band_rows",
@@ -63,7 +69,7 @@ def _table(name, data, skip=()):
     return lines
 
 
-def resolved_toml(wf) -> str:
+def resolved_toml(wf: Workflow) -> str:
     """The workflow as TOML with every default filled in; unset optional keys as comments.
 
     The text parses back (:mod:`tomllib`) to a workflow equal in content.
@@ -90,7 +96,7 @@ def resolved_toml(wf) -> str:
 
 
 # ----------------------------------------------------------------- band table
-def band_rows(wf) -> list[dict]:
+def band_rows(wf: Workflow) -> list[dict]:
     """One dict per band: name, flux and error columns, unit, centre (um), calibration group."""
     bs = wf.bandset()
     units = wf.catalog["units"]
@@ -106,7 +112,7 @@ def band_rows(wf) -> list[dict]:
     return rows
 
 
-def format_band_table(rows, catalog_units=None) -> str:
+def format_band_table(rows: list[dict], catalog_units: Mapping[str, str] | None = None) -> str:
     """Aligned text of :func:`band_rows`; ``catalog_units`` (flux column -> unit) fills units in."""
     catalog_units = catalog_units or {}
     head = ("band", "flux", "error", "limit", "unit", "centre", "calibration")
@@ -117,7 +123,7 @@ def format_band_table(rows, catalog_units=None) -> str:
 
 
 # ---------------------------------------------------------- resolved physics
-def physics_lines(wf) -> list[str]:
+def physics_lines(wf: Workflow) -> list[str]:
     """The resolved model, opacity, priors and field of a workflow, one item per line."""
     model = wf.build_model(distance=1.0 * u.kpc, redshift=0.0) if wf.model["amplitude"] == "mass" \
         else wf.build_model(redshift=0.0)
@@ -148,7 +154,7 @@ def _describe(obj):
 
 
 # ------------------------------------------------------------- workflow lines
-def line_of(wf, pattern) -> int | None:
+def line_of(wf: Workflow, pattern: str) -> int | None:
     """Line number (1-based) of the first line of the workflow file matching ``pattern`` (regex)."""
     if wf.file is None:
         return None
@@ -160,7 +166,7 @@ def line_of(wf, pattern) -> int | None:
     return next((n for n, line in enumerate(lines, 1) if rx.search(line)), None)
 
 
-def with_line(wf, err: ConfigError) -> ConfigError:
+def with_line(wf: Workflow, err: ConfigError) -> ConfigError:
     """``err`` with ``line N`` after the file name when its message names a section and has no line."""
     msg = str(err)
     if " line " in msg.split(":", 1)[0] or wf.file is None:
@@ -179,7 +185,8 @@ def with_line(wf, err: ConfigError) -> ConfigError:
 
 
 # ------------------------------------------------------------ T_eq and timing
-def t_eq_range(wf, mapped, *, max_sources: int = 200, seed: int = 0):
+def t_eq_range(wf: Workflow, mapped: MappedCatalog, *, max_sources: int = 200,
+               seed: int = 0) -> dict[str, Any] | None:
     """Predicted equilibrium temperatures over (a random sample of) the catalogue.
 
     Each source's field is built with :func:`sedtemp.fields.build_field`
@@ -225,7 +232,8 @@ def t_eq_range(wf, mapped, *, max_sources: int = 200, seed: int = 0):
             "max": float(t.max()) if t.size else np.nan}
 
 
-def time_estimate(wf, mapped, *, n_sample: int = 3, workers: int | None = None):
+def time_estimate(wf: Workflow, mapped: MappedCatalog, *, n_sample: int = 3,
+                  workers: int | None = None) -> dict[str, Any]:
     """Estimated run time from timing the fit, predict and compare of a few sources.
 
     The first timed source carries the one-off set-up (the grid table of

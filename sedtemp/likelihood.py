@@ -49,7 +49,7 @@ class Calibration:
     >>> cal = Calibration({"long": (["b250", "b350"], 0.05), "short": (["b70"], 0.07)})
     """
 
-    def __init__(self, groups: Mapping[str, tuple[Sequence[str], float]]):
+    def __init__(self, groups: Mapping[str, tuple[Sequence[str], float]]) -> None:
         self.groups: dict[str, tuple[tuple[str, ...], float]] = {}
         seen: dict[str, str] = {}
         for gname, spec in dict(groups).items():
@@ -88,7 +88,7 @@ class Calibration:
                 out[names.index(b), g] = frac
         return out
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Calibration({self.groups!r})"
 
 
@@ -148,7 +148,8 @@ class PhotometryLikelihood:
         ln det C  = sum ln sigma^2 + sum_g ln(1 + d_g^2 a_g).
     """
 
-    def __init__(self, flux, flux_err, *, limit_only=None, calibration=None):
+    def __init__(self, flux: ArrayLike, flux_err: ArrayLike, *, limit_only: ArrayLike | None = None,
+                 calibration: ArrayLike | None = None) -> None:
         flux = np.asarray(flux, dtype=float)
         err = np.asarray(flux_err, dtype=float)
         nb = flux.shape[0]
@@ -185,7 +186,7 @@ class PhotometryLikelihood:
         m = np.atleast_2d(model_flux)[:, self.limit_only]
         return np.sum(log_ndtr((self._lim_f - m) / self._lim_err), axis=1)
 
-    def __call__(self, model_flux):
+    def __call__(self, model_flux: ArrayLike) -> np.ndarray:
         """Log-likelihood, shape (n,), for model band fluxes of shape (n, n_bands)."""
         chi2, logdet = self.chi2_and_logdet(model_flux)
         return self._const - 0.5 * (chi2 + logdet) + self.limit_term(model_flux)

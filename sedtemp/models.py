@@ -28,6 +28,8 @@ da Cunha et al. (2013).
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING, Any
+
 import astropy.units as u
 import numpy as np
 from numpy.typing import ArrayLike
@@ -45,6 +47,9 @@ from .constants import DEFAULT_GAS_TO_DUST, M_HYDROGEN, M_SUN, T_CMB0
 from .errors import InputError
 from .opacity import SaturatedPowerLawOpacity
 from .priors import LogUniformAmplitude, Prior, Uniform
+
+if TYPE_CHECKING:
+    from .opacity import Opacity
 
 __all__ = [
     "MODELS",
@@ -334,9 +339,11 @@ class ModifiedBlackbody(_OneTemperature):
     Kauffmann, J., et al. 2008, A&A, 487, 993 (mu_H2 = 2.8, from memory).
     """
 
-    def __init__(self, opacity=None, *, amplitude="mass", distance=None, redshift=0.0,
-                 solid_angle=None, beta=None, cmb_heating=None, cmb_contrast=None,
-                 mean_molecular_weight=2.8, nu0=None):
+    def __init__(self, opacity: Opacity | None = None, *, amplitude: str = "mass",
+                 distance: u.Quantity | float | None = None, redshift: float = 0.0,
+                 solid_angle: u.Quantity | float | None = None, beta: float | None = None,
+                 cmb_heating: bool | None = None, cmb_contrast: bool | None = None,
+                 mean_molecular_weight: float = 2.8, nu0: u.Quantity | float | None = None) -> None:
         if amplitude not in _AMPLITUDES:
             raise InputError(f"amplitude must be one of {list(_AMPLITUDES)}, got {amplitude!r}")
         self.amplitude = amplitude
@@ -443,7 +450,7 @@ class ModifiedBlackbody(_OneTemperature):
             priors["beta"] = Uniform(*_BETA_RANGE)
         return Prior(priors)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         where = (f"distance={self.distance_m / u.pc.to(u.m):.6g} pc" if self.distance_m
                  else f"solid_angle={self.solid_angle_sr:.6g} sr")
         beta = "free" if self.beta is None else f"{self.beta:g}"
@@ -494,8 +501,9 @@ class ThickModifiedBlackbody(_OneTemperature):
     (``beta``). Not linear in an amplitude: ``amplitude_name`` is None.
     """
 
-    def __init__(self, opacity=None, *, solid_angle, redshift=0.0, beta=None,
-                 cmb_heating=None, cmb_contrast=None, nu0=None):
+    def __init__(self, opacity: Opacity | None = None, *, solid_angle: u.Quantity | float,
+                 redshift: float = 0.0, beta: float | None = None, cmb_heating: bool | None = None,
+                 cmb_contrast: bool | None = None, nu0: u.Quantity | float | None = None) -> None:
         self.redshift = _check_redshift(redshift)
         self.opacity = default_opacity("dust") if opacity is None else opacity
         self.beta = _fixed_beta(beta)
@@ -532,7 +540,7 @@ class ThickModifiedBlackbody(_OneTemperature):
             priors["beta"] = Uniform(*_BETA_RANGE)
         return Prior(priors)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         beta = "free" if self.beta is None else f"{self.beta:g}"
         return (f"ThickModifiedBlackbody(solid_angle={self.solid_angle_sr:.6g} sr, "
                 f"redshift={self.redshift:g}, nu0={self.nu0_hz:.6g} Hz, beta={beta}, "
@@ -572,11 +580,14 @@ class TwoTemperatureModel(SEDModel):
         redshifts differ.
     """
 
-    def __init__(self, cold=None, warm=None, *, redshift=None, opacity=None, amplitude="mass", distance=None,
-                 solid_angle=None, beta=None):
+    def __init__(self, cold: ModifiedBlackbody | None = None, warm: ModifiedBlackbody | None = None, *,
+                 redshift: float | None = None, opacity: Opacity | None = None, amplitude: str = "mass",
+                 distance: u.Quantity | float | None = None, solid_angle: u.Quantity | float | None = None,
+                 beta: float | None = None) -> None:
         if cold is None and warm is None:
-            opts = {"opacity": opacity, "amplitude": amplitude, "distance": distance, "solid_angle": solid_angle,
-                    "redshift": 0.0 if redshift is None else redshift, "beta": beta}
+            opts: dict[str, Any] = {"opacity": opacity, "amplitude": amplitude, "distance": distance,
+                                    "solid_angle": solid_angle,
+                                    "redshift": 0.0 if redshift is None else redshift, "beta": beta}
             cold, warm = ModifiedBlackbody(**opts), ModifiedBlackbody(**opts)
         elif cold is None or warm is None:
             raise InputError("TwoTemperatureModel: give both cold= and warm= components, or neither "
@@ -644,7 +655,7 @@ class TwoTemperatureModel(SEDModel):
             priors["beta"] = Uniform(*_BETA_RANGE)
         return Prior(priors)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"TwoTemperatureModel(cold={self.cold!r}, warm={self.warm!r})"
 
 

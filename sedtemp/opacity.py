@@ -9,6 +9,8 @@ two differ by the gas-to-dust ratio, and models that take a dust mass need
 from __future__ import annotations
 
 import hashlib
+from pathlib import Path
+from typing import Any
 
 import astropy.units as u
 import numpy as np
@@ -62,7 +64,7 @@ class Opacity:
         """kappa_nu in m^2 kg^-1 at ``nu_hz``; ``beta`` broadcasts against ``nu_hz``."""
         raise NotImplementedError
 
-    def __call__(self, nu):
+    def __call__(self, nu: u.Quantity | ArrayLike) -> u.Quantity:
         """kappa_nu as a Quantity in cm^2 g^-1 (``nu``: Quantity, or bare um)."""
         return (self.kappa_si(to_hz(nu, name="nu")) * _KAPPA_SI).to(_KAPPA_PUBLIC)
 
@@ -105,7 +107,8 @@ class PowerLawOpacity(Opacity):
     >>> kap = PowerLawOpacity(0.1 * u.cm**2 / u.g, 1 * u.THz, beta=2.0, per="gas")
     """
 
-    def __init__(self, kappa0, nu0, beta=0.0, *, per="dust"):
+    def __init__(self, kappa0: u.Quantity | float, nu0: u.Quantity | float, beta: float = 0.0, *,
+                 per: str = "dust") -> None:
         self.kappa0_si = float(to_si(kappa0, _KAPPA_SI, default_unit=_KAPPA_PUBLIC, name="kappa0"))
         self.nu0_hz = float(to_hz(nu0, default_unit=u.Hz, name="nu0"))
         if not self.kappa0_si > 0:
@@ -119,7 +122,7 @@ class PowerLawOpacity(Opacity):
         b = self.beta if beta is None else np.asarray(beta, dtype=float)
         return self.kappa0_si * (np.asarray(nu_hz, dtype=float) / self.nu0_hz) ** b
 
-    def with_beta(self, beta):
+    def with_beta(self, beta: float) -> PowerLawOpacity:
         """Copy of this opacity with another emissivity index."""
         return PowerLawOpacity(self.kappa0_si * _KAPPA_SI, self.nu0_hz * u.Hz, beta, per=self.per)
 
@@ -136,7 +139,7 @@ class PowerLawOpacity(Opacity):
         """A bare far-IR law is extrapolated shortward of :data:`DEFAULT_FIR_LAW_SHORTEST_UM`."""
         return _C_UM_HZ / DEFAULT_FIR_LAW_SHORTEST_UM
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         k = (self.kappa0_si * _KAPPA_SI).to_value(_KAPPA_PUBLIC)
         return (f"PowerLawOpacity(kappa0={k:.4g} cm2/g, nu0={self.nu0_hz:.4g} Hz, "
                 f"beta={self.beta:g}, per={self.per!r})")
@@ -185,7 +188,8 @@ class TabulatedOpacity(Opacity):
     True
     """
 
-    def __init__(self, nu_or_wavelength, kappa, *, per="dust", break_wavelength=None):
+    def __init__(self, nu_or_wavelength: u.Quantity | ArrayLike, kappa: u.Quantity | ArrayLike, *,
+                 per: str = "dust", break_wavelength: u.Quantity | float | None = None) -> None:
         nu = to_hz(nu_or_wavelength, name="table abscissa")
         k = to_si(kappa, _KAPPA_SI, default_unit=_KAPPA_PUBLIC, name="kappa")
         if nu.ndim != 1 or nu.shape != k.shape or nu.size < 2:
@@ -210,7 +214,8 @@ class TabulatedOpacity(Opacity):
             self.beta = float((self._lk[1] - self._lk[0]) / (self._lnu[1] - self._lnu[0]))
 
     @classmethod
-    def from_file(cls, path, *, per="dust", format=None, break_wavelength=None):
+    def from_file(cls, path: str | Path, *, per: str = "dust", format: str | None = None,
+                  break_wavelength: u.Quantity | float | None = None) -> TabulatedOpacity:
         """Read a two-column table (ECSV, or ASCII with units in the column metadata).
 
         The first column is frequency or wavelength, the second kappa; both
@@ -250,7 +255,7 @@ class TabulatedOpacity(Opacity):
         """Above the highest tabulated frequency kappa is an extrapolation."""
         return float(np.exp(self._lnu[-1]))
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return (f"TabulatedOpacity({self._lnu.size} nodes, break at {_C_UM_HZ / self.break_nu_hz:.4g} um, "
                 f"beta={self.beta:.4g}, per={self.per!r})")
 
@@ -314,8 +319,11 @@ class SaturatedPowerLawOpacity(Opacity):
     ...                                grain_radius=0.1 * u.um)
     """
 
-    def __init__(self, kappa0, nu0, beta=0.0, *, grain_radius=None, grain_density=None,
-                 break_wavelength=None, per="dust", gas_to_dust=DEFAULT_GAS_TO_DUST):
+    def __init__(self, kappa0: u.Quantity | float, nu0: u.Quantity | float, beta: float = 0.0, *,
+                 grain_radius: u.Quantity | float | None = None,
+                 grain_density: u.Quantity | float | None = None,
+                 break_wavelength: u.Quantity | float | None = None, per: str = "dust",
+                 gas_to_dust: float = DEFAULT_GAS_TO_DUST) -> None:
         self._law = PowerLawOpacity(kappa0, nu0, beta, per=per)
         self.kappa0_si, self.nu0_hz = self._law.kappa0_si, self._law.nu0_hz
         self.beta, self.per = self._law.beta, self._law.per
@@ -354,9 +362,9 @@ class SaturatedPowerLawOpacity(Opacity):
             return self._law.kappa_si(self.break_nu_hz, beta)
         return self._kappa_sat_si + 0.0 * np.asarray(0.0 if beta is None else beta, float)
 
-    def with_beta(self, beta):
+    def with_beta(self, beta: float) -> SaturatedPowerLawOpacity:
         """Copy of this opacity with another far-infrared emissivity index."""
-        kw = dict(per=self.per, gas_to_dust=self.gas_to_dust)
+        kw: dict[str, Any] = dict(per=self.per, gas_to_dust=self.gas_to_dust)
         if self.break_nu_hz is not None:
             kw["break_wavelength"] = self.break_nu_hz * u.Hz
         else:
@@ -374,7 +382,7 @@ class SaturatedPowerLawOpacity(Opacity):
         """The reference frequency nu0 of the far-IR law."""
         return self.nu0_hz
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         k = (self.kappa0_si * _KAPPA_SI).to_value(_KAPPA_PUBLIC)
         cap = (f"break at {self.break_nu_hz:.4g} Hz" if self.break_nu_hz is not None
                else f"grain_radius={self.grain_radius_m * 1e6:.4g} um")

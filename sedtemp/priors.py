@@ -11,7 +11,7 @@ posterior-predictive checks built on them are well defined.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -48,7 +48,7 @@ class Uniform(_Prior1D):
         Finite bounds, in the parameter's unit.
     """
 
-    def __init__(self, low, high):
+    def __init__(self, low: float, high: float) -> None:
         low, high = float(low), float(high)
         self._bounds_check(low, high, "Uniform")
         if not (np.isfinite(low) and np.isfinite(high)):
@@ -64,14 +64,14 @@ class Uniform(_Prior1D):
     def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return rng.uniform(self.low, self.high, size=n)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Uniform({self.low:g}, {self.high:g})"
 
 
 class LogUniform(_Prior1D):
     """Log-uniform (scale-invariant) prior, p(x) ∝ 1/x on [low, high], 0 < low < high."""
 
-    def __init__(self, low, high):
+    def __init__(self, low: float, high: float) -> None:
         low, high = float(low), float(high)
         self._bounds_check(low, high, "LogUniform")
         if not (low > 0 and np.isfinite(high)):
@@ -89,14 +89,14 @@ class LogUniform(_Prior1D):
     def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return np.exp(rng.uniform(np.log(self.low), np.log(self.high), size=n))
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"LogUniform({self.low:g}, {self.high:g})"
 
 
 class Gaussian(_Prior1D):
     """Gaussian prior N(mean, sigma^2), optionally truncated to [low, high] and renormalised."""
 
-    def __init__(self, mean, sigma, low=-np.inf, high=np.inf):
+    def __init__(self, mean: float, sigma: float, low: float = -np.inf, high: float = np.inf) -> None:
         mean, sigma, low, high = float(mean), float(sigma), float(low), float(high)
         if not (np.isfinite(mean) and np.isfinite(sigma) and sigma > 0):
             raise InputError(f"Gaussian: needs a finite mean and sigma > 0, got ({mean}, {sigma})")
@@ -118,7 +118,7 @@ class Gaussian(_Prior1D):
         lo, hi = special.ndtr(self._a), special.ndtr(self._b)
         return self.mean + self.sigma * special.ndtri(rng.uniform(lo, hi, size=n))
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Gaussian({self.mean:g}, {self.sigma:g}, low={self.low:g}, high={self.high:g})"
 
 
@@ -132,7 +132,7 @@ class UniformAmplitude(_Prior1D):
     not put unbounded weight on A -> 0 when a source is barely detected.
     """
 
-    def __init__(self, low, high):
+    def __init__(self, low: float, high: float) -> None:
         low, high = float(low), float(high)
         self._bounds_check(low, high, "UniformAmplitude")
         if not (np.isfinite(low) and np.isfinite(high)):
@@ -150,7 +150,7 @@ class UniformAmplitude(_Prior1D):
     def sample(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return np.log10(rng.uniform(10.0**self.low, 10.0**self.high, size=n))
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"UniformAmplitude({self.low:g}, {self.high:g})"
 
 
@@ -177,10 +177,10 @@ class LogUniformAmplitude(Uniform):
     True
     """
 
-    def __init__(self, low, high):
+    def __init__(self, low: float, high: float) -> None:
         super().__init__(low, high)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"LogUniformAmplitude({self.low:g}, {self.high:g})"
 
 
@@ -199,7 +199,7 @@ class Prior(Mapping):
     (1,)
     """
 
-    def __init__(self, priors):
+    def __init__(self, priors: Mapping[str, _Prior1D]) -> None:
         self._priors = dict(priors)
         for name, pr in self._priors.items():
             if not isinstance(pr, _Prior1D):
@@ -207,13 +207,13 @@ class Prior(Mapping):
                     f"prior for '{name}' must be Uniform, LogUniform, Gaussian, UniformAmplitude or LogUniformAmplitude, got {pr!r}"
                 )
 
-    def __getitem__(self, key):
+    def __getitem__(self, key: str) -> _Prior1D:
         return self._priors[key]
 
-    def __iter__(self):
+    def __iter__(self) -> Iterator[str]:
         return iter(self._priors)
 
-    def __len__(self):
+    def __len__(self) -> int:
         return len(self._priors)
 
     def updated(self, other: Mapping[str, _Prior1D]) -> Prior:
@@ -255,6 +255,6 @@ class Prior(Mapping):
         hi = np.array([self._priors[n].high for n in names])
         return lo, hi
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         inner = ", ".join(f"{k!r}: {v!r}" for k, v in self._priors.items())
         return f"Prior({{{inner}}})"

@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import functools
 import hashlib
+from collections.abc import Iterable
 from pathlib import Path
+from typing import Any
 
 import astropy.constants as const
 import astropy.units as u
@@ -99,7 +101,7 @@ def _mmp83_uv_flux_si(lam_lo_um, lam_hi_um):
 _G0_PER_U = _mmp83_uv_flux_si(C_LIGHT / NU_LYMAN * 1e6, C_LIGHT / NU_6EV * 1e6) / HABING_FLUX
 
 
-def U_to_G0(U):
+def U_to_G0(U: ArrayLike) -> np.ndarray:
     """Habing G0 of an MMP83-shaped field of strength ``U`` (dimensionless, array_like).
 
     Notes
@@ -112,7 +114,7 @@ def U_to_G0(U):
     return np.asarray(U, dtype=float) * _G0_PER_U
 
 
-def G0_to_U(G0):
+def G0_to_U(G0: ArrayLike) -> np.ndarray:
     """Inverse of :func:`U_to_G0`: the MMP83 scale factor U giving Habing ``G0``."""
     return np.asarray(G0, dtype=float) / _G0_PER_U
 
@@ -133,7 +135,7 @@ class RadiationField:
         """Additive terms of the field (a list; ``[self]`` unless this is a sum)."""
         return [self]
 
-    def unit_spectrum(self):
+    def unit_spectrum(self) -> tuple[tuple[Any, ...], RadiationField, float]:
         """``(key, unit_field, scale)`` with J_nu = scale x unit_field's J_nu.
 
         Fields whose spectra differ only by a factor return equal, hashable
@@ -152,14 +154,14 @@ class RadiationField:
         """This field multiplied by ``factor`` (a non-negative number)."""
         return ScaledField(self, factor)
 
-    def __mul__(self, factor):
+    def __mul__(self, factor: float) -> RadiationField:
         if isinstance(factor, RadiationField):
             return NotImplemented
         return self.scaled(factor)
 
     __rmul__ = __mul__
 
-    def __add__(self, other):
+    def __add__(self, other: object) -> RadiationField:
         if not isinstance(other, RadiationField):
             return NotImplemented
         return SumField([*self.components, *other.components])
@@ -189,7 +191,8 @@ class RadiationField:
         """
         return AttenuatedField(self, A_V, curve=extinction_curve(law, R_V=R_V))
 
-    def energy_density(self, *, nu_min=None, nu_max=None, n=20001):
+    def energy_density(self, *, nu_min: u.Quantity | float | None = None,
+                       nu_max: u.Quantity | float | None = None, n: int = 20001) -> u.Quantity:
         """Energy density u = (4 pi / c) int J_nu dnu, as a Quantity in J m^-3.
 
         Parameters
@@ -208,7 +211,7 @@ class RadiationField:
         f = self.mean_intensity_si(nu) * nu
         return 4 * np.pi / C_LIGHT * np.trapezoid(f, np.log(nu)) * u.J / u.m**3
 
-    def habing_G0(self, *, n=4001):
+    def habing_G0(self, *, n: int = 4001) -> float:
         """G0: 4 pi int J_nu dnu over 6-13.6 eV divided by the Habing (1968) flux."""
         nu = np.geomspace(NU_6EV, NU_LYMAN, int(n))
         flux = 4 * np.pi * np.trapezoid(self.mean_intensity_si(nu) * nu, np.log(nu))
@@ -240,7 +243,7 @@ class ISRF(RadiationField):
     by Zucconi et al. 2001, A&A, 376, 650).
     """
 
-    def __init__(self, U=1.0):
+    def __init__(self, U: float = 1.0) -> None:
         self.U = float(U)
         if not (np.isfinite(self.U) and self.U >= 0):
             raise InputError(f"ISRF: U must be a finite number >= 0, got {U!r}")
@@ -251,20 +254,20 @@ class ISRF(RadiationField):
     def scaled(self, factor: float) -> RadiationField:
         return ISRF(self.U * _check_factor(factor))
 
-    def unit_spectrum(self):
+    def unit_spectrum(self) -> tuple[tuple[Any, ...], RadiationField, float]:
         return ("isrf",), _ISRF1, self.U
 
     @property
-    def G0(self):
+    def G0(self) -> float:
         """Habing G0 of this field (exact integral of the MMP83 UV laws)."""
         return float(U_to_G0(self.U))
 
     @classmethod
-    def from_G0(cls, G0):
+    def from_G0(cls, G0: float) -> ISRF:
         """The MMP83 field whose 6-13.6 eV flux is ``G0`` Habing fields."""
         return cls(float(G0_to_U(G0)))
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"ISRF(U={self.U:g})"
 
 
@@ -283,7 +286,7 @@ class Blackbody(RadiationField):
         filled by the source for a star).
     """
 
-    def __init__(self, temperature, dilution=1.0):
+    def __init__(self, temperature: u.Quantity | float, dilution: float = 1.0) -> None:
         self.temperature_k = float(to_kelvin(temperature, name="temperature"))
         self.dilution = float(dilution)
         if not self.temperature_k > 0:
@@ -297,11 +300,11 @@ class Blackbody(RadiationField):
     def scaled(self, factor: float) -> RadiationField:
         return Blackbody(self.temperature_k, self.dilution * _check_factor(factor))
 
-    def unit_spectrum(self):
+    def unit_spectrum(self) -> tuple[tuple[Any, ...], RadiationField, float]:
         # a star, the CMB and a diluted blackbody of one temperature share B_nu(T)
         return ("blackbody", self.temperature_k), Blackbody(self.temperature_k), self.dilution
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Blackbody({self.temperature_k:g} K, dilution={self.dilution:.4g})"
 
 
@@ -340,7 +343,9 @@ class Star(Blackbody):
     dust); pass a wider grid for dust inside an H II region.
     """
 
-    def __init__(self, teff, luminosity=None, radius=None, *, distance=None):
+    def __init__(self, teff: u.Quantity | float, luminosity: u.Quantity | float | None = None,
+                 radius: u.Quantity | float | None = None, *,
+                 distance: u.Quantity | float | None = None) -> None:
         t = float(to_kelvin(teff, name="teff"))
         if not t > 0:
             raise InputError(f"Star: teff must be positive, got {teff!r}")
@@ -373,7 +378,7 @@ class Star(Blackbody):
                              f"({self.radius_m:.4g} m)")
         return _dilution(self.radius_m, d)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return (f"Star(teff={self.teff_k:g} K, radius={self.radius_m / const.R_sun.si.value:.4g} R_sun, "
                 f"distance={self.distance_m / const.pc.si.value:.4g} pc)")
 
@@ -391,14 +396,14 @@ class CMB(Blackbody):
     Fixsen, D. J. 2009, ApJ, 707, 916: T0 = 2.72548 +- 0.00057 K.
     """
 
-    def __init__(self, redshift=0.0):
+    def __init__(self, redshift: float = 0.0) -> None:
         z = float(redshift)
         if not (np.isfinite(z) and z >= 0):
             raise InputError(f"CMB: redshift must be a finite number >= 0, got {redshift!r}")
         self.redshift = z
         super().__init__(CMB_T0 * (1.0 + z))
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"CMB(redshift={self.redshift:g})"
 
 
@@ -418,7 +423,8 @@ class Tabulated(RadiationField):
         Alternative to the two arrays.
     """
 
-    def __init__(self, nu_or_wavelength=None, J=None, *, path=None):
+    def __init__(self, nu_or_wavelength: u.Quantity | ArrayLike | str | Path | None = None,
+                 J: u.Quantity | ArrayLike | None = None, *, path: str | Path | None = None) -> None:
         if isinstance(nu_or_wavelength, (str, Path)) and J is None:
             nu_or_wavelength, path = None, nu_or_wavelength
         if path is not None:
@@ -458,7 +464,7 @@ class Tabulated(RadiationField):
         inside = (lnu >= self._lnu[0]) & (lnu <= self._lnu[-1])
         return np.where(inside & (out > 1e-320), out, 0.0)
 
-    def unit_spectrum(self):
+    def unit_spectrum(self) -> tuple[tuple[Any, ...], RadiationField, float]:
         h = hashlib.blake2b(self._lnu.tobytes() + self._j.tobytes(), digest_size=16).hexdigest()
         return ("table", h), self, 1.0
 
@@ -470,7 +476,7 @@ class Tabulated(RadiationField):
             new._lj = np.maximum(np.log(new._j), -745.0)
         return new
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"Tabulated({self._lnu.size} nodes, {np.exp(self._lnu[0]):.3g}-{np.exp(self._lnu[-1]):.3g} Hz)"
 
 
@@ -488,7 +494,7 @@ def _check_factor(factor):
 class ScaledField(RadiationField):
     """``factor`` times another field (what ``*`` returns for fields without their own scale)."""
 
-    def __init__(self, field, factor):
+    def __init__(self, field: RadiationField, factor: float) -> None:
         self.field = field
         self.factor = _check_factor(factor)
 
@@ -498,18 +504,18 @@ class ScaledField(RadiationField):
     def scaled(self, factor: float) -> RadiationField:
         return ScaledField(self.field, self.factor * _check_factor(factor))
 
-    def unit_spectrum(self):
+    def unit_spectrum(self) -> tuple[tuple[Any, ...], RadiationField, float]:
         key, unit, scale = self.field.unit_spectrum()
         return key, unit, scale * self.factor
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"{self.factor:g} * {self.field!r}"
 
 
 class SumField(RadiationField):
     """Sum of fields; ``components`` lists the terms (flattened)."""
 
-    def __init__(self, components):
+    def __init__(self, components: Iterable[RadiationField]) -> None:
         comps = []
         for c in components:
             if not isinstance(c, RadiationField):
@@ -523,8 +529,9 @@ class SumField(RadiationField):
     def components(self) -> list[RadiationField]:
         return list(self._components)
 
-    def mean_intensity_si(self, nu_hz):  # the base signature; 0 for a sum of no components
-        return sum(c.mean_intensity_si(nu_hz) for c in self._components)
+    def mean_intensity_si(self, nu_hz: ArrayLike) -> np.ndarray:
+        # sum() is typed as possibly its start value 0; __init__ ensures >= 1 component
+        return sum(c.mean_intensity_si(nu_hz) for c in self._components)  # type: ignore[return-value]
 
     def scaled(self, factor: float) -> RadiationField:
         return SumField([c.scaled(factor) for c in self._components])
@@ -534,7 +541,7 @@ class SumField(RadiationField):
         curve = extinction_curve(law, R_V=R_V)
         return SumField([AttenuatedField(c, A_V, curve=curve) for c in self._components])
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return " + ".join(repr(c) for c in self._components)
 
 
@@ -564,7 +571,7 @@ class ExtinctionCurve:
     2023, ApJ, 950, 86 (G23, the default curve).
     """
 
-    def __init__(self, law="G23", *, R_V=3.1):
+    def __init__(self, law: str | Any = "G23", *, R_V: float = 3.1) -> None:
         from dust_extinction import averages, parameter_averages
 
         if isinstance(law, str):
@@ -605,7 +612,7 @@ class ExtinctionCurve:
         """Optical depth per magnitude of A_V, (ln 10 / 2.5) A(lambda)/A(V)."""
         return _TAU_PER_MAG * self.a_over_av(nu_hz)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"ExtinctionCurve({self.name!r})"
 
 
@@ -614,7 +621,7 @@ def _named_curve(law: str, R_V: float) -> ExtinctionCurve:
     return ExtinctionCurve(law, R_V=R_V)
 
 
-def extinction_curve(law="G23", *, R_V=3.1) -> ExtinctionCurve:
+def extinction_curve(law: str | Any = "G23", *, R_V: float = 3.1) -> ExtinctionCurve:
     """An :class:`ExtinctionCurve`, shared (built once per process) for a named law and R_V."""
     if isinstance(law, str):
         return _named_curve(law, float(R_V))
@@ -629,7 +636,7 @@ class AttenuatedField(RadiationField):
     inside a cloud.
     """
 
-    def __init__(self, field, A_V, *, curve):
+    def __init__(self, field: RadiationField, A_V: float, *, curve: ExtinctionCurve) -> None:
         self.field = field
         self.A_V = float(A_V)
         if not (np.isfinite(self.A_V) and self.A_V >= 0):
@@ -642,5 +649,5 @@ class AttenuatedField(RadiationField):
     def scaled(self, factor: float) -> RadiationField:
         return AttenuatedField(self.field.scaled(factor), self.A_V, curve=self.curve)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"({self.field!r}).attenuated(A_V={self.A_V:g}, law={self.curve.name!r})"

@@ -10,6 +10,7 @@ unless the user asks for another seed).
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Iterable
 
 import numpy as np
 
@@ -49,6 +50,6 @@ def source_seed(seed: int | None, key: object) -> np.random.SeedSequence:
     return np.random.SeedSequence([resolve_seed(seed), id_hash(key)])
 
 
-def source_seeds(seed: int | None, keys) -> list[np.random.SeedSequence]:
+def source_seeds(seed: int | None, keys: Iterable[object]) -> list[np.random.SeedSequence]:
     """:func:`source_seed` for each of ``keys``."""
     return [source_seed(seed, k) for k in keys]

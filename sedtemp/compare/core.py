@@ -18,10 +18,10 @@ and (times M_i) as a luminosity. :func:`compare_draws` is
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from dataclasses import field as _dc_field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
@@ -36,6 +36,15 @@ from .chunk import W_PER_KG_IN_LSUN_PER_MSUN, columns_from, evaluate, source_fac
 from .flags import untrusted_flags
 from .thresholds import Thresholds
 from .uncertainty import _Shared
+
+if TYPE_CHECKING:
+    from numpy.typing import ArrayLike
+
+    from ..fit.result import FitResult
+    from ..grains import Grain
+    from ..opacity import Opacity
+    from ..simulate import SeedLike
+    from .uncertainty import FieldUncertaintySpec, OpacityUncertaintySpec
 
 __all__ = ["Comparison", "compare", "compare_draws"]
 
@@ -139,7 +148,7 @@ class Comparison:
         """
         return api_columns(self._columns)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"<Comparison {self.flag}: {self.verdict}>"
 
 def _prepare_draws(T_draws, beta_draws, mass_draws, opacity):
@@ -183,9 +192,13 @@ def _seed_of(seed):
                          f"SeedSequence or a Generator, got {seed!r}") from err
 
 
-def compare_draws(T_draws, beta_draws, field, opacity, *, mass_draws=None, field_uncertainty=None,
-                  opacity_uncertainty=None, projected=False, thresholds=None, grain=None, fit_flags=None,
-                  seed=None, run_seed=None) -> Comparison:
+def compare_draws(T_draws: u.Quantity | ArrayLike, beta_draws: ArrayLike | float | None,
+                  field: RadiationField, opacity: Opacity, *, mass_draws: u.Quantity | ArrayLike | None = None,
+                  field_uncertainty: FieldUncertaintySpec = None,
+                  opacity_uncertainty: OpacityUncertaintySpec = None, projected: bool = False,
+                  thresholds: Thresholds | Mapping[str, float] | None = None, grain: Grain | None = None,
+                  fit_flags: Sequence[str] | str | None = None, seed: SeedLike = None,
+                  run_seed: int | None = None) -> Comparison:
     """Compare posterior draws of (T, beta) with the equilibrium temperature of a modelled field.
 
     Parameters
@@ -297,8 +310,10 @@ def compare_draws(T_draws, beta_draws, field, opacity, *, mass_draws=None, field
         opacity_extrapolated_fraction=row["opacity_extrapolated_fraction"], _columns=row)
 
 
-def compare(fit_result, field, opacity=None, *, field_uncertainty=None, opacity_uncertainty=None,
-            projected=False, thresholds=None, grain=None, seed=None) -> Comparison:
+def compare(fit_result: FitResult, field: RadiationField, opacity: Opacity | None = None, *,
+            field_uncertainty: FieldUncertaintySpec = None, opacity_uncertainty: OpacityUncertaintySpec = None,
+            projected: bool = False, thresholds: Thresholds | Mapping[str, float] | None = None,
+            grain: Grain | None = None, seed: SeedLike = None) -> Comparison:
     """Compare a fit's posterior with the equilibrium temperature of a modelled field.
 
     Parameters

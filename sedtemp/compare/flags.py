@@ -10,11 +10,15 @@ sources widens the count's interval as it should.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import ArrayLike
 
 from .thresholds import UNTRUSTED_FIT_FLAGS, Thresholds
+
+if TYPE_CHECKING:
+    from ..grains import Grain
 
 __all__ = ["catalogue_counts", "classify", "untrusted_flags", "verdict"]
 
@@ -27,7 +31,8 @@ def untrusted_flags(fit_flags: str | Sequence[str] | None) -> tuple[str, ...]:
     return tuple(f.strip() for f in items if f.strip() in UNTRUSTED_FIT_FLAGS)
 
 
-def classify(ratio, ratio_floor, stochastic_fraction, untrusted, th: Thresholds) -> np.ndarray:
+def classify(ratio: ArrayLike, ratio_floor: ArrayLike | None, stochastic_fraction: ArrayLike,
+             untrusted: ArrayLike, th: Thresholds) -> np.ndarray:
     """Flags (n,) of :data:`FLAGS` from ratio draws (n, m), tested in the documented order.
 
     Parameters
@@ -66,8 +71,10 @@ def _pfmt(p, n):
     return f"= {p:.3f}"
 
 
-def verdict(flag, *, q, p_warmer, n, th, bounded, untrusted=(), stochastic_fraction=float("nan"),
-            grain=None, extra_solar=float("nan"), extra_lum=None) -> str:
+def verdict(flag: str, *, q: Sequence[float], p_warmer: float, n: int, th: Thresholds, bounded: bool,
+            untrusted: Sequence[str] = (), stochastic_fraction: float = float("nan"),
+            grain: Grain | None = None, extra_solar: float = float("nan"),
+            extra_lum: float | None = None) -> str:
     """One line: flag, ratio and its 68 % interval, the probability, and what it means.
 
     ``q`` is (q16, q50, q84) of the ratio; ``extra_solar`` and ``extra_lum``

@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
@@ -15,6 +16,13 @@ from ..seeds import source_seed
 from .chunk import column_names
 from .core import CLASS_COLUMN, api_columns, compare_draws
 from .thresholds import Thresholds
+
+if TYPE_CHECKING:
+    from astropy.table import Row
+
+    from ..grains import Grain
+    from ..opacity import Opacity
+    from .uncertainty import FieldUncertaintySpec, OpacityUncertaintySpec
 
 __all__ = ["compare_table", "row_seed"]
 
@@ -78,9 +86,14 @@ def _field_of_row(field, table, i):
                      f"sequence of {len(table)} fields")
 
 
-def compare_table(table: Table, field, opacity, *, draws=None, id_column="id", flags_column="flags",
-                  field_uncertainty=None, opacity_uncertainty=None, projected=False, thresholds=None,
-                  grain=None, seed=None) -> Table:
+def compare_table(table: Table,
+                  field: RadiationField | Callable[[Row], RadiationField] | Sequence[RadiationField],
+                  opacity: Opacity, *, draws: Mapping[Any, Any] | None = None, id_column: str = "id",
+                  flags_column: str | None = "flags",
+                  field_uncertainty: FieldUncertaintySpec | Callable[[Row], FieldUncertaintySpec] = None,
+                  opacity_uncertainty: OpacityUncertaintySpec = None, projected: bool = False,
+                  thresholds: Thresholds | Mapping[str, float] | None = None, grain: Grain | None = None,
+                  seed: int | None = None) -> Table:
     """Run :func:`compare_draws` for every row of a fit-results table and add the columns.
 
     Parameters

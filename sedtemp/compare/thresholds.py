@@ -57,7 +57,7 @@ class Thresholds:
     max_ratio_width: float = 0.5
     p_stochastic: float = 0.5
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         checks = {"p_decide": 0.5 <= self.p_decide < 1.0, "ratio_high": self.ratio_high >= 1.0,
                   "ratio_low": 0.0 < self.ratio_low <= 1.0, "max_ratio_width": self.max_ratio_width > 0.0,
                   "p_stochastic": 0.0 < self.p_stochastic <= 1.0}

@@ -14,7 +14,8 @@ kappa_FIR / kappa_abs) multiplies the absorbed power of every component.
 from __future__ import annotations
 
 import numbers
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import numpy as np
@@ -23,6 +24,16 @@ from scipy.stats import truncnorm
 from ..errors import InputError
 from ..radiation import AttenuatedField, RadiationField, ScaledField, Star
 from ..seeds import resolve_seed, source_seed
+
+if TYPE_CHECKING:
+    from typing import TypeAlias
+
+    #: What ``field_uncertainty=`` accepts (see :func:`sedtemp.compare.compare_draws`).
+    FieldUncertaintySpec: TypeAlias = (
+        "float | FieldUncertainty | Mapping[int | RadiationField, FieldUncertainty"
+        " | Sequence[FieldUncertainty]] | None")
+    #: What ``opacity_uncertainty=`` accepts.
+    OpacityUncertaintySpec: TypeAlias = "float | ScaleUncertainty | None"
 
 __all__ = [
     "DEFAULT_OPACITY_UNCERTAINTY",
@@ -115,7 +126,7 @@ class ScaleUncertainty(FieldUncertainty):
     The median factor is 1, so the nominal field is the median field.
     """
 
-    def __init__(self, factor, *, shared=False):
+    def __init__(self, factor: float, *, shared: bool = False) -> None:
         self.factor = float(factor)
         if not (np.isfinite(self.factor) and self.factor >= 1.0):
             raise InputError(f"ScaleUncertainty: factor must be a number >= 1 (e.g. 2 for 'known to a "
@@ -129,7 +140,7 @@ class ScaleUncertainty(FieldUncertainty):
         """Factors from the shared standard normals of this component."""
         return np.exp(np.log(self.factor) * normals)
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"ScaleUncertainty(factor={self.factor:g}{', shared=True' if self.shared else ''})"
 
 
@@ -147,7 +158,7 @@ class DistanceUncertainty(FieldUncertainty):
     factor is the exact ratio of dilution factors W(d) / W(d0) ~ (d0 / d)^2.
     """
 
-    def __init__(self, fraction):
+    def __init__(self, fraction: float) -> None:
         self.fraction = float(fraction)
         if not (np.isfinite(self.fraction) and self.fraction >= 0):
             raise InputError(f"DistanceUncertainty: fraction must be a number >= 0 (0.2 for 20 %), "
@@ -161,7 +172,7 @@ class DistanceUncertainty(FieldUncertainty):
         r = _distance_ratio(rng, n, self.fraction, star.radius_m / star.distance_m)
         return star.dilution_at(r * star.distance_m * u.m) / star.dilution
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"DistanceUncertainty(fraction={self.fraction:g})"
 
 
@@ -188,7 +199,7 @@ class ProjectedDistance(FieldUncertainty):
 
     bounds_T_eq = True
 
-    def __init__(self, fraction=0.0, *, isotropic=False):
+    def __init__(self, fraction: float = 0.0, *, isotropic: bool = False) -> None:
         self.fraction = float(fraction)
         if not (np.isfinite(self.fraction) and self.fraction >= 0):
             raise InputError(f"ProjectedDistance: fraction must be a number >= 0, got {fraction!r}")
@@ -205,7 +216,7 @@ class ProjectedDistance(FieldUncertainty):
             r = r / np.sqrt(1.0 - cos_i**2)
         return star.dilution_at(r * star.distance_m * u.m) / star.dilution
 
-    def __repr__(self):
+    def __repr__(self) -> str:
         return f"ProjectedDistance(fraction={self.fraction:g}, isotropic={self.isotropic})"
 
 
@@ -228,11 +239,12 @@ def _component_index(key, comps):
     raise InputError(f"field_uncertainty keys must be component indices or component objects, got {key!r}")
 
 
-def resolve_uncertainty(spec, field, projected):
+def resolve_uncertainty(spec: FieldUncertaintySpec, field: RadiationField,
+                        projected: bool) -> list[tuple[tuple[int, ...], FieldUncertainty]]:
     """Normalise ``field_uncertainty`` and ``projected`` to [(component indices, uncertainty)]."""
     comps = field.components
     every = tuple(range(len(comps)))
-    entries = []
+    entries: list[tuple[tuple[int, ...], FieldUncertainty]] = []
     if spec is None:
         pass
     elif isinstance(spec, numbers.Real) and not isinstance(spec, bool):
@@ -273,7 +285,10 @@ def resolve_uncertainty(spec, field, projected):
     return entries
 
 
-def draw_factors(entries, comps, n, rng, *, run_seed=None, shared=None):
+def draw_factors(entries: Sequence[tuple[tuple[int, ...], FieldUncertainty]],
+                 comps: Sequence[RadiationField], n: int, rng: np.random.Generator, *,
+                 run_seed: int | None = None,
+                 shared: _Shared | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Per-draw factors (n, n_components) and which components only bound T_eq.
 
     ``shared`` (a cache of shared streams, made from ``run_seed`` when None)
@@ -295,7 +310,8 @@ def draw_factors(entries, comps, n, rng, *, run_seed=None, shared=None):
     return f, bounded
 
 
-def opacity_factors(spec, n, rng, *, run_seed=None, shared=None):
+def opacity_factors(spec: OpacityUncertaintySpec, n: int, rng: np.random.Generator, *,
+                    run_seed: int | None = None, shared: _Shared | None = None) -> np.ndarray:
     """Factors (n,) on the absorbed power from the opacity uncertainty ``spec``.
 
     ``spec``: None (:data:`DEFAULT_OPACITY_UNCERTAINTY`), a number x >= 0 (the

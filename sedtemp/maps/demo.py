@@ -13,15 +13,21 @@ Nothing here describes a real object, instrument or sky region.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import astropy.units as u
 import numpy as np
 from astropy.coordinates import SkyCoord
 from astropy.io import fits
 from astropy.wcs import WCS
+from numpy.typing import ArrayLike
 
 from ..bands import Band, BandSet
 from .fitting import default_map_model
 from .images import BandImage, convolve_to_beam
+
+if TYPE_CHECKING:
+    from pathlib import Path
 
 __all__ = [
     "DEMO_BANDS",
@@ -74,7 +80,7 @@ def _offsets(wcs):
     return dlon.to_value(u.arcmin), dlat.to_value(u.arcmin)
 
 
-def truth_maps(wcs, *, smooth: bool = False) -> dict:
+def truth_maps(wcs: WCS, *, smooth: bool = False) -> dict:
     """The truth on a grid: ``T`` (K), ``beta``, ``log10_N_H2`` (cm^-2) per pixel.
 
     ``smooth``: a gentler version (no sharp rim, broad filament) whose
@@ -168,7 +174,7 @@ def make_map_demo(*, seed: int = 0, scale: float = 1.0, smooth: bool = False, no
 
 
 # ------------------------------------------------------------------ the demo run
-def pull_statistics(T_median, T_p16, T_p84, T_true) -> dict:
+def pull_statistics(T_median: ArrayLike, T_p16: ArrayLike, T_p84: ArrayLike, T_true: ArrayLike) -> dict:
     """Pulls (T_median - T_true) / sigma, sigma = (T_p84 - T_p16) / 2, over the finite pixels.
 
     Returns
@@ -228,7 +234,8 @@ def _write_demo_inputs(demo: dict, folder) -> str:
     return text
 
 
-def run_map_demo(output_dir, *, seed: int = 0, scale: float = 2.0, progress: bool = False) -> dict:
+def run_map_demo(output_dir: str | Path, *, seed: int = 0, scale: float = 2.0,
+                 progress: bool = False) -> dict:
     """Build the invented cloud's images, fit them through a map workflow and compare T with the truth.
 
     Parameters

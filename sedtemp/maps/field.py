@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import numpy as np
@@ -32,6 +33,14 @@ from astropy.io import fits
 from ..compare import FLAGS, compare_chunk
 from ..errors import InputError
 from ..fields import build_field
+
+if TYPE_CHECKING:
+    from astropy.wcs import WCS
+
+    from ..compare import Thresholds
+    from ..compare.uncertainty import FieldUncertaintySpec
+    from ..opacity import Opacity
+    from ..radiation import RadiationField
 
 __all__ = ["COMPARE_CODES", "FieldSpec", "compare_pixels", "pixel_fields"]
 
@@ -63,7 +72,7 @@ class FieldSpec:
         component giving both ``arg`` and ``arg_map``.
     """
 
-    def __init__(self, spec: Mapping):
+    def __init__(self, spec: Mapping) -> None:
         unknown = sorted(set(spec) - _FIELD_KEYS)
         if unknown:
             raise InputError(f"field: unknown key(s) {unknown}; known keys are {sorted(_FIELD_KEYS)}")
@@ -126,7 +135,8 @@ def _separations(spec: FieldSpec, wcs, ys, xs) -> dict:
     return out
 
 
-def pixel_fields(spec: FieldSpec, wcs, ys, xs, aux: Mapping) -> list:
+def pixel_fields(spec: FieldSpec, wcs: WCS, ys: np.ndarray, xs: np.ndarray,
+                 aux: Mapping) -> list[RadiationField | None]:
     """One field per pixel (``ys``, ``xs`` output-grid indices); None where a map value is missing.
 
     ``aux`` maps the keys of :meth:`FieldSpec.map_inputs` to the values at
@@ -157,9 +167,11 @@ def _field_or_none(comps, av):
         return None
 
 
-def compare_pixels(T_draws: np.ndarray, beta_draws: np.ndarray, fields: Sequence, opacity, *,
-                   field_uncertainty=None, projected=False, thresholds=None, fit_flags=None,
-                   seeds=None) -> dict:
+def compare_pixels(T_draws: np.ndarray, beta_draws: np.ndarray, fields: Sequence[RadiationField | None],
+                   opacity: Opacity, *, field_uncertainty: FieldUncertaintySpec = None, projected: bool = False,
+                   thresholds: Thresholds | Mapping[str, float] | None = None,
+                   fit_flags: Sequence[Sequence[str]] | None = None,
+                   seeds: Sequence[int | np.random.SeedSequence | None] | None = None) -> dict:
     """Compare the (T, beta) draws of each pixel with its own field: one compare_chunk call per tile.
 
     Parameters

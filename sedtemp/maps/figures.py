@@ -86,7 +86,7 @@ def quicklook_figure(hdul: fits.HDUList, *, fig: Figure | None = None) -> Figure
     return fig
 
 
-def save_quicklook(hdul: fits.HDUList, path, *, dpi: int = 110) -> Path:
+def save_quicklook(hdul: fits.HDUList, path: str | Path, *, dpi: int = 110) -> Path:
     """Write :func:`quicklook_figure` to ``path`` (PNG or PDF by suffix); the path written."""
     from .._io import atomic_path
 

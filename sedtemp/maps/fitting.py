@@ -14,8 +14,9 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import tempfile
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
@@ -39,6 +40,15 @@ from .tiles import (
     run_tiles,
     tile_origins,
 )
+
+if TYPE_CHECKING:
+    import concurrent.futures as cf
+
+    from astropy.wcs import WCS
+
+    from ..bands import Band
+    from ..likelihood import Calibration
+    from ..models import SEDModel
 
 __all__ = ["QUANTITY_EXTENSIONS", "default_map_model", "fit_maps"]
 
@@ -107,12 +117,15 @@ def _digest(cube, aux, settings) -> str:
     return h.hexdigest()
 
 
-def fit_maps(images: Mapping, errors: Mapping, bands, *, model=None, prior=None, calibration=None,
-             field=None, beams=None, target_wcs=None, target_shape=None, snr_floor: float = _DEFAULT_SNR_FLOOR,
+def fit_maps(images: Mapping, errors: Mapping, bands: BandSet | Sequence[Band], *, model: SEDModel | None = None,
+             prior: Mapping[str, Any] | None = None, calibration: Calibration | Mapping | None = None,
+             field: Mapping | None = None, beams: Mapping[str, u.Quantity | float] | None = None,
+             target_wcs: WCS | fits.Header | None = None, target_shape: tuple[int, int] | None = None,
+             snr_floor: float = _DEFAULT_SNR_FLOOR,
              min_bands: int | None = None, n_T: int = _DEFAULT_N_T, n_beta: int = _DEFAULT_N_BETA,
-             n_draws: int = 200, tile_size: int = _DEFAULT_TILE, executor=None, n_workers: int | None = None,
-             checkpoint_dir=None, restart: bool = False, seed: int | None = None,
-             progress: bool = False) -> fits.HDUList:
+             n_draws: int = 200, tile_size: int = _DEFAULT_TILE, executor: cf.Executor | None = None,
+             n_workers: int | None = None, checkpoint_dir: str | Path | None = None, restart: bool = False,
+             seed: int | None = None, progress: bool = False) -> fits.HDUList:
     """Fit T, beta and the amplitude pixel by pixel to band images; maps with uncertainties.
 
     Parameters

@@ -12,9 +12,10 @@ the image.
 from __future__ import annotations
 
 import os
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import numpy as np
@@ -23,6 +24,12 @@ from astropy.io import fits
 from astropy.wcs import WCS
 
 from ..errors import InputError
+
+if TYPE_CHECKING:
+    from typing import TypeAlias
+
+    #: An image as the map functions accept it: an HDU with a celestial WCS, or a FITS file.
+    ImageLike: TypeAlias = "fits.ImageHDU | fits.PrimaryHDU | str | Path"
 
 __all__ = [
     "FWHM_TO_SIGMA",
@@ -155,7 +162,8 @@ def _to_si_factor(bunit, src, name, fwhm_deg):
                      "such as 'MJy/sr', 'Jy/sr' or 'Jy/beam'")
 
 
-def read_image(image, name: str, *, beam=None) -> tuple[np.ndarray, WCS, float, float, str]:
+def read_image(image: ImageLike, name: str, *,
+               beam: u.Quantity | float | None = None) -> tuple[np.ndarray, WCS, float, float, str]:
     """An image in SI surface brightness: (data, celestial WCS, beam FWHM deg, unit factor, source).
 
     Parameters
@@ -181,7 +189,8 @@ def read_image(image, name: str, *, beam=None) -> tuple[np.ndarray, WCS, float, 
     return data * factor, wcs, fwhm, factor, src
 
 
-def read_noise(noise, name: str, shape, factor: float, fwhm_deg: float) -> np.ndarray:
+def read_noise(noise: ImageLike | u.Quantity | float, name: str, shape: tuple[int, ...], factor: float,
+               fwhm_deg: float) -> np.ndarray:
     """The 1-sigma noise map in SI: an image, or a constant Quantity or number.
 
     A noise image is read with its own BUNIT (the band image's when it has
@@ -274,7 +283,8 @@ def _reproject(img: BandImage, wcs_out: WCS, shape_out) -> BandImage:
     return BandImage(img.name, data, noise, wcs_out, img.beam_fwhm_deg, img.source, hist)
 
 
-def reproject_plain(image, wcs_out: WCS, shape_out, *, what: str = "map") -> np.ndarray:
+def reproject_plain(image: ImageLike, wcs_out: WCS, shape_out: tuple[int, int], *,
+                    what: str = "map") -> np.ndarray:
     """Any image (HDU or path) with a celestial WCS, reprojected (bilinear) onto the output grid.
 
     No unit conversion: for auxiliary maps such as A_V or the ISRF strength U.
@@ -295,8 +305,10 @@ def independent_beams(n_pixels: int, pixel_scale_deg: float, fwhm_deg: float) ->
     return float(n_pixels * np.deg2rad(pixel_scale_deg) ** 2 / beam_area_sr(fwhm_deg))
 
 
-def match_images(images: Mapping, errors: Mapping, bands, *, beams=None, target_wcs=None,
-                 target_shape=None) -> tuple[dict, WCS, float, list]:
+def match_images(images: Mapping, errors: Mapping, bands: Sequence[str], *,
+                 beams: Mapping[str, u.Quantity | float] | None = None,
+                 target_wcs: WCS | fits.Header | None = None,
+                 target_shape: tuple[int, int] | None = None) -> tuple[dict, WCS, float, list]:
     """Read, convolve to the coarsest beam and reproject every band image onto one grid.
 
     Parameters

@@ -16,6 +16,7 @@ import json
 import logging
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -23,6 +24,9 @@ from .._io import atomic_write_text, atomic_write_with, remove_stale_temporaries
 from ..errors import InputError
 from ..seeds import source_seed
 from .field import compare_pixels, pixel_fields
+
+if TYPE_CHECKING:
+    import concurrent.futures as cf
 
 __all__ = ["FLAG_BITS", "SKIP_CODES", "TileTask", "prepare_folder", "run_tile", "run_tiles", "tile_origins"]
 
@@ -62,7 +66,7 @@ class TileTask:
     compare: object = compare_pixels
 
 
-def tile_origins(shape, size: int) -> list[tuple[int, int]]:
+def tile_origins(shape: tuple[int, ...], size: int) -> list[tuple[int, int]]:
     """Top-left corners of the tiles covering ``shape`` (row-major).
 
     Examples
@@ -201,7 +205,8 @@ def prepare_folder(folder: Path, digest: str, restart: bool) -> None:
     atomic_write_text(state, json.dumps({"digest": digest}))
 
 
-def run_tiles(tasks: list[TileTask], folder: Path, executor, *, n_workers=None, progress=False) -> tuple[dict, int]:
+def run_tiles(tasks: list[TileTask], folder: Path, executor: cf.Executor, *, n_workers: int | None = None,
+              progress: bool = False) -> tuple[dict, int]:
     """Run the tasks whose tile is not checkpointed yet; (results by origin, number resumed)."""
     import concurrent.futures as cf
 

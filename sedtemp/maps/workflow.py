@@ -18,6 +18,7 @@ import json
 import time
 from collections import Counter
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import numpy as np
@@ -29,6 +30,9 @@ from ..pipeline.config import Workflow, parse_quantity, parse_workflow, read_tom
 from .field import COMPARE_CODES
 from .fitting import fit_maps
 from .tiles import FLAG_BITS, SKIP_CODES
+
+if TYPE_CHECKING:
+    from ..models import SEDModel
 
 __all__ = ["MAPS_KEYS", "MAP_BAND_KEYS", "MapWorkflow", "load_map_workflow", "parse_map_workflow",
            "run_map_workflow"]
@@ -59,17 +63,17 @@ class MapWorkflow:
         The shared sections (bands, model, priors, calibration, field, run).
     """
 
-    def __init__(self, maps: dict, images: dict, wf: Workflow):
+    def __init__(self, maps: dict, images: dict, wf: Workflow) -> None:
         self.maps, self.images, self.wf = maps, images, wf
 
     @property
     def output_dir(self) -> Path:
         return self.wf.path(self.maps["directory"])
 
-    def model(self):
+    def model(self) -> SEDModel:
         return self.wf.build_model()
 
-    def field_spec(self):
+    def field_spec(self) -> dict | None:
         """The field of ``[field]`` for :func:`fit_maps`, or None without components."""
         f = self.wf.field
         if not f["components"]:
@@ -114,7 +118,8 @@ def _check(table, types_of, section, source):
     return dict(table)
 
 
-def parse_map_workflow(data: dict, *, base_dir=".", source="<workflow>") -> MapWorkflow:
+def parse_map_workflow(data: dict, *, base_dir: str | Path = ".",
+                       source: str = "<workflow>") -> MapWorkflow:
     """Validate a parsed TOML map workflow.
 
     Raises
@@ -166,7 +171,7 @@ def parse_map_workflow(data: dict, *, base_dir=".", source="<workflow>") -> MapW
     return MapWorkflow(maps, images, wf)
 
 
-def load_map_workflow(path) -> MapWorkflow:
+def load_map_workflow(path: str | Path) -> MapWorkflow:
     """Read and validate a map workflow TOML file (see :func:`parse_map_workflow`).
 
     Raises
@@ -218,7 +223,8 @@ def _summary(hdul) -> dict:
     return out
 
 
-def run_map_workflow(path, *, output_dir=None, restart: bool = False, progress: bool = False) -> dict:
+def run_map_workflow(path: str | Path, *, output_dir: str | Path | None = None,
+                     restart: bool = False, progress: bool = False) -> dict:
     """Run a map workflow: fit the maps, write them (FITS), the quick-look figure and a report.
 
     Parameters

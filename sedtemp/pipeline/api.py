@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 from astropy.table import Table
@@ -38,6 +39,9 @@ from .stages import (
     prediction_beta,
     process_chunk,
 )
+
+if TYPE_CHECKING:
+    import concurrent.futures as cf
 
 __all__ = ["compare", "fit", "predict", "run"]
 
@@ -57,7 +61,8 @@ def _public(tab):
     return tab[[c for c in tab.colnames if not c.startswith("_")]]
 
 
-def fit(table, workflow: Workflow, *, n_keep=None) -> Table:
+def fit(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *,
+        n_keep: int | None = None) -> Table:
     """Fit stage alone: posterior summaries, diagnostics and (optionally) draws per source.
 
     Parameters
@@ -78,7 +83,8 @@ def fit(table, workflow: Workflow, *, n_keep=None) -> Table:
     return _public(process_chunk(workflow, mapped, stages=("fit",), n_keep=n_keep))
 
 
-def predict(table, workflow: Workflow, *, fits=None) -> Table:
+def predict(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *,
+            fits: Table | None = None) -> Table:
     """Predict stage alone: T_eq of each source's field at beta (the fitted median if ``fits`` is given).
 
     Returns
@@ -99,7 +105,7 @@ def predict(table, workflow: Workflow, *, fits=None) -> Table:
     return _public(assemble(mapped, [column_rows(cols, n)], status, reason, workflow=workflow))
 
 
-def compare(table, workflow: Workflow, *, fits) -> Table:
+def compare(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *, fits: Table) -> Table:
     """Compare stage alone, on the posterior draws of a :func:`fit` table (``draws_*`` columns).
 
     Raises
@@ -131,7 +137,9 @@ def compare(table, workflow: Workflow, *, fits) -> Table:
     return _public(assemble(mapped, [column_rows(cols, n)], status, reason, workflow=workflow))
 
 
-def run(table, workflow: Workflow, *, executor=None, output_dir=None, progress=False) -> Table:
+def run(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflow, *,
+        executor: cf.Executor | None = None,
+        output_dir: str | os.PathLike[str] | None = None, progress: bool = False) -> Table:
     """fit -> predict -> compare over a whole catalogue; the results table.
 
     Parameters

@@ -19,17 +19,22 @@ file may carry units as its first row under the header.
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import numpy as np
 from astropy.coordinates import SkyCoord
 from astropy.table import MaskedColumn
+from numpy.typing import ArrayLike
 
 from .._units import flux_density_si, group_causes, parse_unit
 from ..errors import CatalogError, ConfigError, InputError
 from ..fields import argument_value, build_field
 from .config import Workflow, band_solid_angle, parse_quantity
 from .tables import read_catalog, write_table
+
+if TYPE_CHECKING:
+    from astropy.table import Table
 
 __all__ = ["MappedCatalog", "map_catalog", "read_catalog", "source_key", "write_table"]
 
@@ -41,7 +46,7 @@ _DIMENSIONLESS = {"U", "A_V", "dilution", "redshift", "scale"}
 _SHOW = 5
 
 
-def source_key(value) -> str:
+def source_key(value: object) -> str:
     """The text form of a source id used for seeds and bookkeeping (stable across runs)."""
     if isinstance(value, bytes):
         value = value.decode()
@@ -115,7 +120,7 @@ class MappedCatalog:
     def __len__(self) -> int:
         return len(self.ids)
 
-    def take(self, index) -> MappedCatalog:
+    def take(self, index: ArrayLike) -> MappedCatalog:
         """A sub-catalogue of the sources at ``index`` (integer array)."""
         index = np.asarray(index, dtype=int)
         n = len(self)
@@ -136,7 +141,7 @@ class MappedCatalog:
                        skip_reason=self.skip_reason[index],
                        kept={k: v[index] for k, v in self.kept.items()})
 
-    def field_arguments(self, i) -> list[dict]:
+    def field_arguments(self, i: int) -> list[dict]:
         """Per component, the keyword arguments of source ``i`` (scalars)."""
         n = len(self)
         out = []
@@ -394,7 +399,7 @@ def _check_field(mapped, probs):
         probs.add(f"[field]: cannot build the radiation field of source {str(mapped.keys[0])!r}: {err}")
 
 
-def map_catalog(table, workflow: Workflow, *, n_free=None) -> MappedCatalog:
+def map_catalog(table: Table, workflow: Workflow, *, n_free: int | None = None) -> MappedCatalog:
     """Validate ``table`` against the workflow and convert it for the stages.
 
     Parameters

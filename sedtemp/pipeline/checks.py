@@ -13,9 +13,14 @@ Each message names the key and says how to fix it.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
+from typing import TYPE_CHECKING, Any
 
 from ..constants import T_CMB0
 from ..errors import ConfigError
+
+if TYPE_CHECKING:
+    from ..bands import Band
 
 __all__ = ["MAX_WORKERS", "PRIOR_ARGUMENTS", "check_sections"]
 
@@ -125,7 +130,7 @@ def _check_distance_redshift(cat, where):
               "consistent")
 
 
-def check_sections(sections: dict, priors: dict, where) -> None:
+def check_sections(sections: dict, priors: dict, where: Any) -> None:
     """Raise :class:`~sedtemp.errors.ConfigError` for values that would make every source fail.
 
     Parameters
@@ -156,7 +161,7 @@ def check_sections(sections: dict, priors: dict, where) -> None:
 _BAND_RANGE_M = (10e-6, 1e-2)
 
 
-def check_far_ir(bands, source) -> None:
+def check_far_ir(bands: Iterable[Band], source: str) -> None:
     """Refuse bands far outside the far-IR/submm (e.g. a response file in the wrong unit)."""
     c = 299792458.0
     for b in bands:

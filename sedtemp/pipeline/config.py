@@ -121,6 +121,7 @@ import tomllib
 from dataclasses import dataclass, field
 from importlib.metadata import entry_points
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 
@@ -129,6 +130,13 @@ from ..errors import ConfigError, InputError
 from ..fields import FIELD_GROUP, field_kinds  # the entry-point group of field kinds, defined once
 from ..fit import defaults as FIT_DEFAULTS
 from .checks import MAX_WORKERS, check_far_ir, check_sections
+
+if TYPE_CHECKING:
+    from ..bands import BandSet
+    from ..likelihood import Calibration
+    from ..models import SEDModel
+    from ..opacity import Opacity
+    from ..priors import _Prior1D
 
 __all__ = [
     "FIELD_GROUP",
@@ -278,7 +286,7 @@ def _check_table(data, schema, section, where) -> dict:
     return out
 
 
-def parse_quantity(value, default_unit, what):
+def parse_quantity(value: str | float, default_unit: str | u.UnitBase, what: str) -> u.Quantity:
     """A workflow value (``"520 pc"`` or a bare number in ``default_unit``) -> Quantity.
 
     Raises
@@ -306,7 +314,7 @@ def _registered(group):
 
 
 @functools.cache
-def lookup_model(name):
+def lookup_model(name: str) -> type[SEDModel]:
     """SED model class registered as ``name`` (built-in, or via the ``sedtemp.models`` entry points).
 
     Raises
@@ -378,7 +386,7 @@ class Workflow:
     text: str | None = field(default=None, repr=False)
 
     # ---------------------------------------------------------------- paths
-    def path(self, value) -> Path:
+    def path(self, value: str | Path) -> Path:
         """``value`` relative to the workflow's directory (absolute paths kept)."""
         p = Path(value)
         return p if p.is_absolute() else self.base_dir / p
@@ -412,7 +420,7 @@ class Workflow:
         return _digest(self.results_content())
 
     # ------------------------------------------------------------- builders
-    def bandset(self):
+    def bandset(self) -> BandSet:
         """The :class:`~sedtemp.bands.BandSet` of the ``[bands]`` tables, in file order."""
         from ..bands import Band, BandSet
 
@@ -436,7 +444,7 @@ class Workflow:
         check_far_ir(out, self.source)
         return BandSet(out)
 
-    def calibration_groups(self):
+    def calibration_groups(self) -> Calibration | None:
         """:class:`~sedtemp.likelihood.Calibration` from ``[calibration]`` and the bands' groups, or None."""
         from ..likelihood import Calibration
 
@@ -448,7 +456,7 @@ class Workflow:
             return None
         return Calibration({g: (members, self.calibration[g]) for g, members in groups.items()})
 
-    def build_model(self, *, distance=None, redshift=0.0):
+    def build_model(self, *, distance: u.Quantity | None = None, redshift: float = 0.0) -> SEDModel:
         """The SED model of ``[model]`` at this distance (Quantity) and redshift."""
         spec = self.model
         cls = lookup_model(spec["name"])
@@ -501,7 +509,7 @@ class Workflow:
         except InputError as err:
             raise ConfigError(f"{self.source}: [model] opacity: {err}") from err
 
-    def opacity(self):
+    def opacity(self) -> Opacity:
         """The dust opacity used for the prediction: ``[model] opacity`` or the model default."""
         from ..models import default_opacity
 
@@ -509,7 +517,7 @@ class Workflow:
             return self._opacity()
         return default_opacity("gas" if self.model["amplitude"] == "column" else "dust")
 
-    def build_prior(self):
+    def build_prior(self) -> dict[str, _Prior1D]:
         """Mapping parameter -> prior object from ``[priors]`` (empty: the model defaults)."""
         from .. import priors as P
 
@@ -636,7 +644,8 @@ def _digest(data) -> str:
     return hashlib.sha256(canon(data).encode()).hexdigest()
 
 
-def parse_workflow(data, *, base_dir=".", source="<workflow>", text=None) -> Workflow:
+def parse_workflow(data: dict, *, base_dir: str | Path = ".", source: str = "<workflow>",
+                   text: str | None = None) -> Workflow:
     """Validate a workflow mapping (as ``tomllib`` returns it) against the schema.
 
     Parameters
@@ -694,7 +703,7 @@ def parse_workflow(data, *, base_dir=".", source="<workflow>", text=None) -> Wor
                     source=source, digest=_digest(data), raw=copy.deepcopy(data), text=text, **sections)
 
 
-def read_toml(path) -> tuple[dict, str]:
+def read_toml(path: str | Path) -> tuple[dict, str]:
     """(mapping, text) of a workflow TOML file.
 
     Raises
@@ -713,7 +722,7 @@ def read_toml(path) -> tuple[dict, str]:
         raise ConfigError(f"{path.name}: not valid TOML: {err}") from err
 
 
-def load_workflow(path) -> Workflow:
+def load_workflow(path: str | Path) -> Workflow:
     """Read and validate a workflow TOML file.
 
     Raises

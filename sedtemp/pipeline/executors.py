@@ -30,7 +30,9 @@ import os
 import signal
 import threading
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
+from types import ModuleType
+from typing import Any
 
 __all__ = [
     "EXECUTORS",
@@ -55,7 +57,7 @@ PARENT_POLL_S = 1.0
 class InlineExecutor(cf.Executor):
     """An Executor that runs each task at submission, in this process (``executor = "serial"``)."""
 
-    def submit(self, fn, /, *args, **kwargs):
+    def submit(self, fn: Callable[..., Any], /, *args: Any, **kwargs: Any) -> cf.Future:
         fut = cf.Future()
         try:
             fut.set_result(fn(*args, **kwargs))
@@ -69,7 +71,7 @@ def n_workers(run: dict) -> int:
     return run["workers"] if run["workers"] > 0 else (os.cpu_count() or 1)
 
 
-def import_optional(module: str, extra: str):
+def import_optional(module: str, extra: str) -> ModuleType:
     """Import ``module`` or raise an ImportError naming the extra to install."""
     try:
         return importlib.import_module(module)
@@ -116,7 +118,7 @@ class SerialKind(ExecutorKind):
     name = "serial"
 
     @contextlib.contextmanager
-    def open(self, run):
+    def open(self, run: dict) -> Iterator[tuple[cf.Executor, int]]:
         yield InlineExecutor(), 1
 
 
@@ -124,7 +126,7 @@ class ProcessKind(ExecutorKind):
     name = "process"
 
     @contextlib.contextmanager
-    def open(self, run):
+    def open(self, run: dict) -> Iterator[tuple[cf.Executor, int]]:
         n = n_workers(run)
         # forkserver: workers are forked from a clean server process (not from this one,
         # which may hold threads), with sedtemp imported once in the server
@@ -152,7 +154,7 @@ class DaskKind(ExecutorKind):
     extra = ("distributed", "dask")
 
     @contextlib.contextmanager
-    def open(self, run):
+    def open(self, run: dict) -> Iterator[tuple[cf.Executor, int]]:
         distributed = import_optional(*self.extra)
         cluster = None
         if run["scheduler"]:
@@ -176,7 +178,7 @@ class MpiKind(ExecutorKind):
     extra = ("mpi4py.futures", "mpi")
 
     @contextlib.contextmanager
-    def open(self, run):
+    def open(self, run: dict) -> Iterator[tuple[cf.Executor, int]]:
         futures = import_optional(*self.extra)
         with futures.MPIPoolExecutor() as ex:
             yield ex, n_workers(run)
@@ -187,7 +189,7 @@ EXECUTORS: dict[str, ExecutorKind] = {k.name: k for k in (ProcessKind(), DaskKin
 
 
 @contextlib.contextmanager
-def open_executor(run: dict):
+def open_executor(run: dict) -> Iterator[tuple[cf.Executor, int]]:
     """Context manager yielding ``(executor, n_workers)`` for the ``[run]`` section.
 
     Raises

@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import logging
 import warnings
+from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from astropy.table import Table
@@ -14,6 +16,11 @@ from .config import SOURCE_PLOT_CHOICES
 from .schema import CLASS_COLUMN, DRAW_PREFIX, FIT_FLAGS_COLUMN, NONE_TEXT, STATUS_OK
 from .sources import plot_source, t_eq_band
 
+if TYPE_CHECKING:
+    from .catalog import MappedCatalog
+    from .config import Workflow
+    from .report import Progress
+
 __all__ = ["SOURCES_DIR", "catalogue_plots", "select_plot_sources", "source_plots"]
 
 log = logging.getLogger(__name__)
@@ -22,7 +29,7 @@ log = logging.getLogger(__name__)
 SOURCES_DIR = "sources"
 
 
-def catalogue_plots(results: Table, directory) -> tuple[list[Path], list[str]]:
+def catalogue_plots(results: Table, directory: str | Path) -> tuple[list[Path], list[str]]:
     """Population plot, and the comparison plot when the comparison columns are there.
 
     Written as ``<directory>/population.{pdf,png}`` and
@@ -110,7 +117,8 @@ def _plot_task(wf, sub, directory, t_eq):
         return [], f"{type(err).__name__}: {err}", info.get("refit", False)
 
 
-def source_plots(run_tasks, wf, mapped, result, out, progress_factory) -> dict:
+def source_plots(run_tasks: Callable[[list, Callable, Callable], Any], wf: Workflow, mapped: MappedCatalog,
+                 result: Table, out: Path, progress_factory: Callable[[str, int], Progress]) -> dict:
     """Per-source figures of the sources ``[output] source_plots`` selects, up to the cap.
 
     ``run_tasks(items, task, on_done)`` runs the tasks (on the run's executor);

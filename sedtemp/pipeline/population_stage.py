@@ -39,7 +39,7 @@ def _interim_prior(wf: Workflow):
     return prior if "beta" in prior else None
 
 
-def population_stage(result: Table, wf: Workflow, directory) -> dict | None:
+def population_stage(result: Table, wf: Workflow, directory: str | Path) -> dict | None:
     """Infer the population of ``result`` (with ``draws_T``/``draws_beta``) and write its files.
 
     Parameters
@@ -91,7 +91,7 @@ def population_stage(result: Table, wf: Workflow, directory) -> dict | None:
             "warnings": sorted({str(w.message) for w in caught if issubclass(w.category, SedtempWarning)})}
 
 
-def read_draws(results: Table, path) -> Table:
+def read_draws(results: Table, path: str | Path) -> Table:
     """Attach the draws file of a run (``<name>-draws.h5`` or ``.fits``) to its results table.
 
     Raises

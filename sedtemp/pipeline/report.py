@@ -18,7 +18,9 @@ import json
 import sys
 import time
 from collections import Counter
+from collections.abc import Iterable
 from pathlib import Path
+from typing import Literal, TextIO
 
 import numpy as np
 from astropy.table import Table
@@ -59,7 +61,8 @@ class Progress:
         Default ``sys.stderr``.
     """
 
-    def __init__(self, stage, total, initial=0, enabled=True, stream=None):
+    def __init__(self, stage: str, total: int, initial: int = 0, enabled: bool = True,
+                 stream: TextIO | None = None) -> None:
         self.stage, self.total, self.done = stage, int(total), int(initial)
         self.counts = Counter()
         self.stream = sys.stderr if stream is None else stream
@@ -72,7 +75,7 @@ class Progress:
             self._bar = tqdm(total=self.total, initial=self.done, unit="src", desc=stage, dynamic_ncols=True,
                              smoothing=0.1, file=self.stream)
 
-    def update(self, statuses) -> None:
+    def update(self, statuses: Iterable[object]) -> None:
         """Count a finished block (its status values)."""
         statuses = [str(s) for s in statuses]
         self.counts.update(statuses)
@@ -94,14 +97,14 @@ class Progress:
         return (f"sedtemp {self.stage}: {self.done}/{self.total} sources ({self._counts()}), "
                 f"{sum(self.counts.values()) / dt:.1f} src/s")
 
-    def close(self):
+    def close(self) -> None:
         if self._bar is not None:
             self._bar.close()
 
-    def __enter__(self):
+    def __enter__(self) -> Progress:
         return self
 
-    def __exit__(self, *exc):
+    def __exit__(self, *exc: object) -> Literal[False]:
         self.close()
         return False
 

@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import re
 import warnings
+from collections.abc import Mapping
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
@@ -29,6 +31,12 @@ from .stages import (
     source_streams,
 )
 
+if TYPE_CHECKING:
+    from astropy.table import Row
+    from numpy.typing import ArrayLike
+
+    from ..fit import FitResult
+
 __all__ = ["grid_result", "plot_source", "refit_source", "source_plot_stem", "source_result", "t_eq_band"]
 
 
@@ -42,7 +50,7 @@ def _check_index(mapped, index, what):
     return key
 
 
-def refit_source(workflow: Workflow, mapped: MappedCatalog, index: int):
+def refit_source(workflow: Workflow, mapped: MappedCatalog, index: int) -> FitResult:
     """The full MCMC posterior of one catalogue source, as the batch run would sample it.
 
     Runs :func:`sedtemp.fit.fit_source` with the workflow's model, priors,
@@ -83,7 +91,7 @@ def refit_source(workflow: Workflow, mapped: MappedCatalog, index: int):
     return res
 
 
-def grid_result(workflow: Workflow, mapped: MappedCatalog, index: int):
+def grid_result(workflow: Workflow, mapped: MappedCatalog, index: int) -> FitResult:
     """The grid posterior of one source as a :class:`~sedtemp.fit.FitResult` (no chain).
 
     The draws are those of the batch run (same grid, same seed); ``ess`` is
@@ -130,7 +138,8 @@ def grid_result(workflow: Workflow, mapped: MappedCatalog, index: int):
                      err_si=np.where(used, mapped.err[i], np.nan), limit_only=mapped.limit_only[i])
 
 
-def source_result(workflow: Workflow, mapped: MappedCatalog, index: int, *, chain: bool = False):
+def source_result(workflow: Workflow, mapped: MappedCatalog, index: int, *,
+                  chain: bool = False) -> tuple[FitResult, bool]:
     """The source's posterior as the run had it: (FitResult, refitted by MCMC?).
 
     A grid source gives :func:`grid_result` (no refit) unless ``chain`` is
@@ -151,7 +160,7 @@ def source_plot_stem(key: str) -> str:
     return _SAFE_NAME.sub("_", str(key)) or "_"
 
 
-def t_eq_band(row):
+def t_eq_band(row: Row | Mapping[str, Any]) -> np.ndarray | None:
     """The predicted T_eq to shade on a corner plot, from a results row, in K; None if there is none.
 
     The 16-84 % interval ``(T_eq_p16, T_eq_p84)`` of the comparison stage
@@ -170,7 +179,8 @@ def t_eq_band(row):
     return np.full(3, t) if np.isfinite(t) else None
 
 
-def plot_source(workflow: Workflow, mapped: MappedCatalog, index: int, directory, *, T_eq=None,
+def plot_source(workflow: Workflow, mapped: MappedCatalog, index: int, directory: str | Path, *,
+                T_eq: ArrayLike | None = None,
                 trace: bool | None = True, info: dict | None = None) -> list:
     """Write the corner and SED plots of one source (and its trace plot when it has a chain).
 

@@ -34,6 +34,9 @@ from ._style import (
 )
 
 if TYPE_CHECKING:  # annotations only
+    from numpy.typing import ArrayLike
+
+    from ..compare import Comparison
     from ..fit import FitResult
 
 __all__ = ["corner_plot", "sed_plot", "trace_plot"]
@@ -92,7 +95,8 @@ def _corner_marks(axes, vals, kind):
                         ls="none", gid="map_point")
 
 
-def corner_plot(result: FitResult, *, T_eq=None, truths: Mapping | Sequence | None = None,
+def corner_plot(result: FitResult, *, T_eq: u.Quantity | ArrayLike | Comparison | None = None,
+                truths: Mapping | Sequence | None = None,
                 fig: FigureBase | None = None, save_to: str | Path | None = None,
                 corner_options: Mapping | None = None) -> FigureBase:
     """Corner plot of one source's posterior: T, beta and the amplitude.

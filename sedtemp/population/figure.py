@@ -6,9 +6,15 @@ figures can be made in one process without piling up open windows.
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
+from numpy.typing import ArrayLike
+
+if TYPE_CHECKING:
+    from .result import PopulationResult
 
 __all__ = ["R68", "R95", "ellipse_points", "population_figure"]
 
@@ -19,7 +25,8 @@ R95 = float(np.sqrt(-2.0 * np.log(1.0 - 0.9545)))
 _N_POINTS = 65
 
 
-def ellipse_points(mean, cov, radius, n_points=_N_POINTS):
+def ellipse_points(mean: ArrayLike, cov: ArrayLike, radius: float | np.ndarray,
+                   n_points: int = _N_POINTS) -> np.ndarray:
     """Points (..., n_points, 2) of the ellipses (x - mean)^T cov^-1 (x - mean) = radius^2.
 
     ``mean`` (..., 2), ``cov`` (..., 2, 2), broadcast together.
@@ -41,7 +48,7 @@ def _source_ellipses(x, valid, max_sources):
     return mean, cov
 
 
-def population_figure(result, *, fig: Figure | None = None, max_sources: int = 2000) -> Figure:
+def population_figure(result: PopulationResult, *, fig: Figure | None = None, max_sources: int = 2000) -> Figure:
     """Inferred population over the per-source 68 % regions, and the posterior of rho.
 
     Parameters

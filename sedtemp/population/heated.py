@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from astropy.table import Table
+from numpy.typing import ArrayLike
 
 from ..errors import InputError
 from ._core import MAX_CELLS, importance_weights, prepare_samples, thin_for_weights
@@ -95,7 +96,8 @@ def _p_heated(model, like, hyper):
     return total / hyper.shape[0]
 
 
-def heated_fraction(log_ratio_draws, *, equilibrium_scatter: float, interim_prior=None, seed: int | None = 0,
+def heated_fraction(log_ratio_draws: ArrayLike, *, equilibrium_scatter: float,
+                    interim_prior: str | Callable[[np.ndarray], np.ndarray] | None = None, seed: int | None = 0,
                     n_walkers: int = 16, n_steps: int = DEFAULT_N_STEPS, min_ess: float = DEFAULT_MIN_ESS,
                     source_ids: Sequence | None = None) -> HeatedFractionResult:
     """Fraction of sources heated beyond equilibrium, with its interval.

@@ -18,10 +18,12 @@ emcee is imported here and in ``fit/mcmc.py`` only (tests/test_layering.py).
 from __future__ import annotations
 
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, Any
 
 import emcee
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..errors import ConvergenceWarning, InputError, PopulationWarning
 from ..seeds import resolve_seed
@@ -34,6 +36,9 @@ from ._core import (
 )
 from .models import population_model
 from .result import FLAG_FEW_DRAWS, FLAG_NO_DRAWS, PopulationResult
+
+if TYPE_CHECKING:
+    from ..priors import Prior
 
 __all__ = [
     "DEFAULT_MIN_ESS",
@@ -54,7 +59,8 @@ DEFAULT_N_STEPS = 2000
 _TAU_LENGTH = 20
 
 
-def run_ensemble(log_post, p0, seed, n_steps):
+def run_ensemble(log_post: Callable[[np.ndarray], np.ndarray], p0: np.ndarray, seed: int,
+                 n_steps: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """emcee run from ``p0`` (W, p): chain (n_steps, W, p), log-probabilities, acceptance, tau."""
     nw, nd = p0.shape
     sampler = emcee.EnsembleSampler(nw, nd, log_post, vectorize=True,
@@ -68,7 +74,8 @@ def run_ensemble(log_post, p0, seed, n_steps):
     return chain, sampler.get_log_prob(), sampler.acceptance_fraction, tau
 
 
-def start_ensemble(model, log_post, x, rng, n_walkers):
+def start_ensemble(model: Any, log_post: Callable[[np.ndarray], np.ndarray], x: np.ndarray,
+                   rng: np.random.Generator, n_walkers: int) -> np.ndarray:
     """Walkers inside the hyper-prior with finite posterior (retries with more jitter)."""
     p0 = model.initial(x, rng, 4 * n_walkers)
     ok = np.isfinite(log_post(p0))
@@ -79,7 +86,9 @@ def start_ensemble(model, log_post, x, rng, n_walkers):
     return p0[ok][:n_walkers]
 
 
-def sample_population(model, x, valid, log_interim, *, seed, n_walkers, n_steps):
+def sample_population(model: Any, x: np.ndarray, valid: np.ndarray, log_interim: np.ndarray, *,
+                      seed: int | None, n_walkers: int, n_steps: int
+                      ) -> tuple[ImportanceLikelihood, np.ndarray, np.ndarray, np.ndarray, np.ndarray, bool, int]:
     """Run the sampler; returns (likelihood, chain, log_prob, acceptance, tau, converged, burn)."""
     if n_walkers < 2 * len(model.param_names):
         raise InputError(f"n_walkers must be at least twice the number of hyper-parameters "
@@ -100,7 +109,7 @@ def sample_population(model, x, valid, log_interim, *, seed, n_walkers, n_steps)
     return like, chain, lp, acc, tau, converged, burn
 
 
-def source_flags(ess, usable, min_ess, what):
+def source_flags(ess: np.ndarray, usable: np.ndarray, min_ess: float, what: str) -> np.ndarray:
     """Per-source flag strings and one categorised warning when any source is flagged."""
     flags = np.where(~usable, FLAG_NO_DRAWS, np.where(ess < min_ess, FLAG_FEW_DRAWS, "")).astype(str)
     few = int(np.sum(flags == FLAG_FEW_DRAWS))
@@ -112,7 +121,9 @@ def source_flags(ess, usable, min_ess, what):
     return flags
 
 
-def infer_population(samples, *, interim_prior=None, model="gaussian", seed: int | None = 0,
+def infer_population(samples: ArrayLike, *,
+                     interim_prior: Prior | Sequence[Any] | Callable[..., np.ndarray] | None = None,
+                     model: str | Any = "gaussian", seed: int | None = 0,
                      n_walkers: int = 32, n_steps: int = DEFAULT_N_STEPS, min_ess: float = DEFAULT_MIN_ESS,
                      source_ids: Sequence | None = None) -> PopulationResult:
     """Posterior of the (T, beta) population from every source's posterior draws.

@@ -89,7 +89,7 @@ class GaussianPopulation:
     name = "gaussian"
     param_names = ("T_mean", "beta_mean", "T_sd", "beta_sd", "rho")
 
-    def __init__(self, low, high):
+    def __init__(self, low: ArrayLike, high: ArrayLike) -> None:
         self.box = _Box(low, high)
 
     def log_prior(self, theta: np.ndarray) -> np.ndarray:
@@ -135,7 +135,7 @@ class MixturePopulation:
     name = "mixture"
     param_names = ("fraction_2", *tuple(f"{p}_{k}" for k in (1, 2) for p in GaussianPopulation.param_names))
 
-    def __init__(self, low, high):
+    def __init__(self, low: ArrayLike, high: ArrayLike) -> None:
         self._one = GaussianPopulation(low, high)
         self.box = self._one.box
 
@@ -213,7 +213,7 @@ class HeatedMixture:
     name = "heated"
     param_names = ("fraction", "heated_mean", "heated_sd")
 
-    def __init__(self, equilibrium_scatter, y_high):
+    def __init__(self, equilibrium_scatter: float, y_high: float) -> None:
         s = float(equilibrium_scatter)
         if not (np.isfinite(s) and s > 0):
             raise InputError(f"heated_fraction: equilibrium_scatter must be a positive number (ln units), got {s!r}")

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 from astropy.table import Table
+from numpy.typing import ArrayLike
 
 from ._core import (
     ImportanceLikelihood,
@@ -125,7 +126,7 @@ class PopulationResult:
         """Posterior median of each hyper-parameter (and derived quantity)."""
         return {k: float(np.median(v)) for k, v in self.draws().items()}
 
-    def shrinkage_weights(self, samples=None) -> np.ndarray:
+    def shrinkage_weights(self, samples: ArrayLike | None = None) -> np.ndarray:
         """Per-draw weights (n_sources, n_draws), rows summing to one, of each source's posterior
         under the population prior averaged over the hyper-parameter posterior.
 
@@ -143,7 +144,8 @@ class PopulationResult:
         w[usable] = importance_weights(like, thin_for_weights(self.samples))[0]
         return w
 
-    def shrunk(self, samples=None, *, n_draws: int | None = None, seed: int = 0) -> np.ndarray:
+    def shrunk(self, samples: ArrayLike | None = None, *, n_draws: int | None = None,
+               seed: int = 0) -> np.ndarray:
         """Per-source draws resampled with the population weights (the shrinkage estimates).
 
         Parameters

@@ -7,12 +7,14 @@ Free of pipeline imports (the pipeline calls these): it reads the
 from __future__ import annotations
 
 import io
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
 from astropy.table import Table, vstack
+from numpy.typing import ArrayLike
 
 from .._io import atomic_write_bytes, atomic_write_text
 from ..errors import InputError
@@ -20,6 +22,9 @@ from .figure import population_figure
 from .heated import heated_fraction
 from .infer import DEFAULT_MIN_ESS, DEFAULT_N_STEPS, infer_population
 from .result import PopulationResult
+
+if TYPE_CHECKING:
+    from ..priors import Prior
 
 __all__ = ["POPULATION_FILES", "RATIO_DRAWS_COLUMN", "population_from_results", "write_population"]
 
@@ -57,9 +62,11 @@ def _draws_of(results, draws):
     return np.stack([T, beta], axis=-1)
 
 
-def population_from_results(results: Table, *, draws=None, model="gaussian", seed: int | None = 0,
-                            n_walkers: int = 32, n_steps: int = DEFAULT_N_STEPS, interim_prior=None,
-                            min_ess: float = DEFAULT_MIN_ESS, ratio_draws=None,
+def population_from_results(results: Table, *, draws: Mapping[str, ArrayLike] | None = None,
+                            model: str | Any = "gaussian", seed: int | None = 0,
+                            n_walkers: int = 32, n_steps: int = DEFAULT_N_STEPS,
+                            interim_prior: Prior | Sequence[Any] | Callable[..., np.ndarray] | None = None,
+                            min_ess: float = DEFAULT_MIN_ESS, ratio_draws: ArrayLike | None = None,
                             equilibrium_scatter: float | None = None, id_column: str = "id") -> PopulationResult:
     """Population of a results table (``draws_T``, ``draws_beta`` columns) and optionally the heated fraction.
 
@@ -132,7 +139,8 @@ def _summary_with_heated(result):
     return tab
 
 
-def write_population(result: PopulationResult, directory, *, version: str | None = None) -> list[Path]:
+def write_population(result: PopulationResult, directory: str | Path, *,
+                     version: str | None = None) -> list[Path]:
     """Write ``population.ecsv``, ``population_sources.ecsv`` and the figure (PNG, PDF), atomically.
 
     Parameters
