@@ -451,3 +451,30 @@ def test_fixed_truth_cold_sources_at_survey_depth_are_not_biased(bands, model):
         g = grid_posterior(f * u.Jy, e * u.Jy, bands, model=model, seed=1)
     pull = (g["T_median"] - 8.0) / (0.5 * (g["T_p84"] - g["T_p16"]))
     assert abs(np.mean(pull)) < 0.3 + 3 / np.sqrt(n)
+
+
+def test_marginal_node_likelihood_equals_the_photometry_likelihood(bands, model):
+    # Reference: PhotometryLikelihood (the Woodbury form of the calibration covariance,
+    # tests/test_likelihood.py checks it against a dense covariance). The marginal
+    # sampler's closed form from per-template sums must equal it at every node,
+    # with calibration groups and an upper limit.
+    from sedtemp.fit._blocks import group_sums
+    from sedtemp.fit.mcmc import MarginalLogPosterior
+    from sedtemp.likelihood import Calibration, PhotometryLikelihood
+
+    cal = Calibration({"short": (["b70", "b100", "b160"], 0.07), "long": (["b250", "b350", "b500"], 0.05)})
+    theta = np.array([[TRUTH["log10_mass"], TRUTH["T"], TRUTH["beta"]]])
+    f, e = simulate(model, bands, theta, 15.0, np.random.default_rng(2))[:2]
+    f, e = f[0] * 1e-26, e[0] * 1e-26
+    lim = np.zeros(f.size, bool)
+    lim[0] = True
+    used = np.ones(f.size, bool)
+    calm = cal.matrix(bands.names)
+    like = PhotometryLikelihood(f, e, limit_only=lim, calibration=calm)
+    post = MarginalLogPosterior(model, bands, like, model.default_prior(), used, calm)
+    x = np.column_stack([np.linspace(12.0, 40.0, 9), np.linspace(1.0, 2.6, 9)])
+    g = post.templates(x)
+    A = np.exp(np.random.default_rng(3).uniform(-3, 3, (9, 5))) * np.median(f / g[:, :1])
+    got = post.node_log_likelihood(A, group_sums(post._F, post._iv, g, post._masks), g)
+    ref = like((A[..., None] * g[:, None, :]).reshape(-1, g.shape[1])).reshape(A.shape)
+    np.testing.assert_allclose(got, ref, rtol=1e-10)

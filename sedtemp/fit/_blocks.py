@@ -112,21 +112,33 @@ def take(arr, idx):
     return arr[0][idx] if arr.shape[0] == 1 else np.take_along_axis(arr, idx, axis=1)
 
 
-def conditional(F, iv, g, masks, d2):
-    """Conditional amplitude mean, sd, chi^2 and calibration log-det per (source, node).
+_GROUP_COLUMNS: dict = {}
 
-    Parameters
-    ----------
-    F, iv : ndarray (ns, nb)
-        Detected fluxes (0 elsewhere) and inverse variances (0 for unused bands).
-    g : ndarray (nn, nb) or (ns, nn, nb)
-        Band fluxes at amplitude 1.
-    masks, d2 : ndarray (k, nb), (k,)
-        Calibration groups (see :func:`sedtemp.likelihood.calibrated_chi2`).
+
+def _group_columns(masks, nb):
+    """Band columns of each (disjoint) calibration group and of no group, cached per mask pattern."""
+    key = (nb, masks.shape, masks.tobytes())
+    hit = _GROUP_COLUMNS.get(key)
+    if hit is None:
+        groups = [np.flatnonzero(m > 0) for m in masks]
+        rest = np.setdiff1d(np.arange(nb), np.concatenate(groups) if groups else np.zeros(0, int))
+        if len(_GROUP_COLUMNS) > 256:
+            _GROUP_COLUMNS.clear()
+        hit = _GROUP_COLUMNS[key] = (groups, rest)
+    return hit
+
+
+def group_sums(F, iv, g, masks):
+    """Weighted sums of templates g against the data, per (source, node) and per calibration group.
 
     Returns
     -------
-    a_hat, sd, chi2, logdet : ndarray (ns, nn)
+    a, b : ndarray (ns, nn)
+        sum g^2 / sigma^2 and sum F g / sigma^2 over the used bands.
+    f : ndarray (ns, 1)
+        sum F^2 / sigma^2.
+    parts : list of (a_k, b_k)
+        The same sums restricted to each calibration group (``masks`` rows).
     """
     if g.ndim == 2:
         def mm(w, gg, cols):
@@ -134,9 +146,7 @@ def conditional(F, iv, g, masks, d2):
     else:
         def mm(w, gg, cols):
             return np.einsum("sb,snb->sn", w[:, cols], gg[..., cols])
-    nb = F.shape[1]
-    groups = [np.flatnonzero(m > 0) for m in masks]  # disjoint calibration groups
-    rest = np.setdiff1d(np.arange(nb), np.concatenate(groups) if groups else np.zeros(0, int))
+    groups, rest = _group_columns(masks, F.shape[1])
     Fiv = F * iv
     g2 = g * g
     parts = [(mm(iv, g2, cols), mm(Fiv, g, cols)) for cols in groups]  # per-group a_g, b_g
@@ -148,7 +158,32 @@ def conditional(F, iv, g, masks, d2):
     for ak, bk in parts:
         a += ak
         b += bk
-    f = np.sum(F * Fiv, axis=1)[:, None]
+    return a, b, np.sum(F * Fiv, axis=1)[:, None], parts
+
+
+def conditional(F, iv, g, masks, d2, sums=None):
+    """Conditional amplitude mean, sd, chi^2 and calibration log-det per (source, node).
+
+    Parameters
+    ----------
+    F, iv : ndarray (ns, nb)
+        Detected fluxes (0 elsewhere) and inverse variances (0 for unused bands).
+    g : ndarray (nn, nb) or (ns, nn, nb)
+        Band fluxes at amplitude 1.
+    masks, d2 : ndarray (k, nb), (k,)
+        Calibration groups (see :func:`sedtemp.likelihood.calibrated_chi2`).
+    sums : tuple, optional
+        :func:`group_sums` of the same arguments, when the caller has them already.
+
+    Returns
+    -------
+    a_hat, sd, chi2, logdet : ndarray (ns, nn)
+    """
+    if sums is None:
+        a, b, f, parts = group_sums(F, iv, g, masks)
+    else:  # the caller's sums stay as they are
+        a, b, f, parts = sums
+        a, b = a.copy(), b.copy()
     det_prod = np.ones_like(a)  # prod_g (1 + d_g^2 A^2 a_g): one log at the end
     if parts:
         a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)

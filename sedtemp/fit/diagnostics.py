@@ -16,7 +16,7 @@ import numpy as np
 from scipy.special import ndtri
 from scipy.stats import rankdata
 
-__all__ = ["ess_basic", "ess_bulk", "ess_tail", "rhat"]
+__all__ = ["ess_basic", "ess_bulk", "ess_bulk_and_rhat", "ess_tail", "rhat", "split_rhat"]
 
 
 def _split(x):
@@ -87,6 +87,19 @@ def _rhat_basic(s):
     b = n * means.var(ddof=1)
     var_hat = (n - 1.0) / n * w + b / n
     return float(np.sqrt(var_hat / w)) if w > 0 else float("nan")
+
+
+def split_rhat(x):
+    """Split R-hat of the raw values (no rank normalisation), x (n_chains, n_draws): a cheap pre-check."""
+    return _rhat_basic(_split(x))
+
+
+def ess_bulk_and_rhat(x):
+    """(:func:`ess_bulk`, :func:`rhat`) of x (n_chains, n_draws), sharing the rank normalisation."""
+    s = _split(x)
+    z = _rank_normalise(s)
+    folded = np.abs(s - np.median(s))
+    return ess_basic(z), max(_rhat_basic(z), _rhat_basic(_rank_normalise(folded)))
 
 
 def rhat(x):
