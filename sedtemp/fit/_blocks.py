@@ -405,9 +405,12 @@ def _map_columns(grid, nodes, cols, a_hat, chi2, flux, err, limit_only):
         cols["chi2_reduced"] = np.where(dof > 0, cols["chi2_map"] / np.where(dof > 0, dof, 1), np.nan)
 
 
-def summarise_nodes(grid, nodes, flux, err, limit_only, rng, n, n_ppp):
-    """Summary columns and draws of a block on ``nodes`` (shared or per source): a BlockSummary."""
-    logp, a_hat, sd, chi2 = grid.log_posterior(flux, err, limit_only, nodes)
+def summarise_nodes(grid, nodes, flux, err, limit_only, rng, n, n_ppp, evaluated=None):
+    """Summary columns and draws of a block on ``nodes`` (shared or per source): a BlockSummary.
+
+    ``evaluated``: the block's ``grid.log_posterior`` on these nodes, when the caller has it.
+    """
+    logp, a_hat, sd, chi2 = grid.log_posterior(flux, err, limit_only, nodes) if evaluated is None else evaluated
     ns = flux.shape[0]
     peak = logp.max(axis=1, keepdims=True)
     ok = np.isfinite(peak[:, 0])

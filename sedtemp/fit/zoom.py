@@ -69,6 +69,25 @@ def profile_chi2(grid, F, iv, pts):
     return np.where(np.isfinite(chi2), chi2, np.inf)
 
 
+#: Positions of the 3 x 3 stencil points (_STENCIL2 order) in a T-major 3 x 3 tensor grid.
+_STENCIL_IN_GRID = ((_STENCIL2[:, 0] + 1) * 3 + _STENCIL2[:, 1] + 1).astype(int)
+
+
+def _stencil_chi2(grid, F, iv, pts, y, h, lo, hi):
+    """profile_chi2 at the stencil points ``pts`` (k, 9 or 3, d) around y with spacing h.
+
+    The clipped 3 x 3 stencil is a tensor grid per source, so its band fluxes
+    come from :meth:`GridPosterior.templates_on` (the same spline values).
+    """
+    if not grid.has_beta:
+        return profile_chi2(grid, F, iv, pts)
+    off = np.array([-1.0, 0.0, 1.0])
+    axes = [np.clip(y[:, j, None] + off * h[:, j, None], lo[j], hi[j]) for j in range(2)]
+    g = grid.templates_on(axes[0], axes[1])[:, _STENCIL_IN_GRID]
+    _, _, chi2, _ = conditional(F, iv, g, grid._masks, grid._d2)
+    return np.where(np.isfinite(chi2), chi2, np.inf)
+
+
 def _newton(c, h):
     """Newton step, PD mask and Laplace sd from a stencil of chi^2 values c (k, 9 or 3)."""
     if h.shape[1] == 1:
@@ -106,30 +125,31 @@ def optimise(grid, F, iv, y0, h0):
     sd = h0.copy()
     rho = np.zeros(len(y))
     active = np.ones(len(y), bool)
-    for _ in range(_N_ITER):  # a fixed number of vectorised iterations over the whole subset
-        pts = np.clip(y[:, None, :] + sten[None] * h[:, None, :], lo, hi)
-        c = profile_chi2(grid, F, iv, pts)
-        step, pd, sd_new, rho_new = _newton(c, h)
-        step = np.clip(step, -4 * h, 4 * h)
-        trial = np.clip(y + np.where(pd[:, None], step, 0.0), lo, hi)
-        ct = profile_chi2(grid, F, iv, trial[:, None, :])[:, 0]
+    for _ in range(_N_ITER):  # at most _N_ITER vectorised iterations over the sources still active
+        a = np.flatnonzero(active)
+        ya, ha = y[a], h[a]
+        pts = np.clip(ya[:, None, :] + sten[None] * ha[:, None, :], lo, hi)
+        c = _stencil_chi2(grid, F[a], iv[a], pts, ya, ha, lo, hi)
+        step, pd, sd_new, rho_new = _newton(c, ha)
+        step = np.clip(step, -4 * ha, 4 * ha)
+        trial = np.clip(ya + np.where(pd[:, None], step, 0.0), lo, hi)
+        ct = profile_chi2(grid, F[a], iv[a], trial[:, None, :])[:, 0]
         ib = np.argmin(c, axis=1)
         cb = c[np.arange(len(c)), ib]
-        use_trial = active & pd & (ct <= np.minimum(cb, c[:, 0]))
-        use_best = active & ~use_trial & (cb < c[:, 0])
-        y = np.where(use_trial[:, None], trial, np.where(use_best[:, None], pts[np.arange(len(c)), ib], y))
-        upd = active & pd
-        sd = np.where(upd[:, None], sd_new, sd)
-        rho = np.where(upd, rho_new, rho)
-        stuck = active & ~use_trial & ~use_best
+        use_trial = pd & (ct <= np.minimum(cb, c[:, 0]))
+        use_best = ~use_trial & (cb < c[:, 0])
+        y[a] = np.where(use_trial[:, None], trial, np.where(use_best[:, None], pts[np.arange(len(c)), ib], ya))
+        sd[a] = np.where(pd[:, None], sd_new, sd[a])
+        rho[a] = np.where(pd, rho_new, rho[a])
+        stuck = ~use_trial & ~use_best
         # stencil spacing follows the posterior width once it is known; halves when stuck
-        h = np.where(upd[:, None], np.clip(sd_new, 1e-9, h0), h)
-        h = np.where(stuck[:, None], 0.5 * h, h)
+        ha = np.where(pd[:, None], np.clip(sd_new, 1e-9, h0[a]), ha)
+        h[a] = np.where(stuck[:, None], 0.5 * ha, ha)
         # a source stops once its Newton step is below 1 % of its posterior sd (or its
         # stencil far below it): its result then depends on its own data only, not on
         # how long the other sources of the block take
-        small = np.all(np.abs(np.where(pd[:, None], step, 0.0)) < 0.01 * sd, axis=1) & pd
-        active &= ~(small | np.all(h < 1e-3 * sd, axis=1))
+        small = np.all(np.abs(np.where(pd[:, None], step, 0.0)) < 0.01 * sd[a], axis=1) & pd
+        active[a] = ~(small | np.all(h[a] < 1e-3 * sd[a], axis=1))
         if not active.any():
             break
     chi2 = profile_chi2(grid, F, iv, y[:, None, :])[:, 0]
@@ -215,20 +235,21 @@ def _posterior_mean(nodes, post):
 
 
 def _windows(grid, F_all, err, limit_only, centre, half, n):
-    """Windows widened until the edge mass is small: (nodes, still_on_edge)."""
+    """Windows widened until the edge mass is small: (nodes, still_on_edge, log_posterior on them)."""
     for attempt in range(_MAX_WIDEN + 1):
         nodes = window_nodes(grid, centre, half, n)
-        logp = grid.log_posterior(F_all, err, limit_only, nodes)[0]
+        evaluated = grid.log_posterior(F_all, err, limit_only, nodes)
+        logp = evaluated[0]
         peak = logp.max(axis=1, keepdims=True)
         post = np.exp(logp - np.where(np.isfinite(peak), peak, 0.0))
         post /= np.maximum(post.sum(axis=1, keepdims=True), 1e-300)
         edge = _edge_mass(grid, nodes, post) > _EDGE_MASS
         if not edge.any() or attempt == _MAX_WIDEN:
-            return nodes, edge
+            return nodes, edge, evaluated
         mean = _posterior_mean(nodes, post)
         centre = np.where(edge[:, None], mean, centre)
         half = np.where(edge[:, None], _WIDEN * half, half)
-    return nodes, edge  # pragma: no cover - loop always returns
+    return nodes, edge, evaluated  # pragma: no cover - loop always returns
 
 
 def refine_block(grid, out, rows, flux, err, limit_only, rng, n, n_ppp):
@@ -248,8 +269,9 @@ def refine_block(grid, out, rows, flux, err, limit_only, rng, n, n_ppp):
     for n_nodes in np.unique(n_of):  # at most three window sizes
         sel = np.flatnonzero(n_of == n_nodes)
         r = rows[sel]
-        nodes, on_edge = _windows(grid, f[sel], e[sel], lim[sel], y[sel], _HALF_SD * sd[sel], int(n_nodes))
-        summ = summarise_nodes(grid, nodes, f[sel], e[sel], lim[sel], _RowRandom(rng, r), n, n_ppp)
+        nodes, on_edge, evaluated = _windows(grid, f[sel], e[sel], lim[sel], y[sel], _HALF_SD * sd[sel],
+                                             int(n_nodes))
+        summ = summarise_nodes(grid, nodes, f[sel], e[sel], lim[sel], _RowRandom(rng, r), n, n_ppp, evaluated)
         failed = on_edge | (summ.cols["chi2_map"] > chi2_opt[sel] + _CHI2_TOL)
         better = chi2_opt[sel] < summ.cols["chi2_map"]
         if better.any():
