@@ -209,7 +209,10 @@ class SEDModel:
     def valid(self, theta: ArrayLike) -> np.ndarray:
         """True where a parameter vector is physical (finite, T > 0, ...); shape (n,)."""
         th = self._theta(theta)
-        return np.all(np.isfinite(th), axis=1) & self._valid_extra(th)
+        finite = np.ones(th.shape[0], bool)
+        for j in range(th.shape[1]):  # a few parameters: columns, faster than an axis-1 reduction
+            finite &= np.isfinite(th[:, j])
+        return finite & self._valid_extra(th)
 
     def _valid_extra(self, th):
         return np.ones(th.shape[0], dtype=bool)

@@ -190,20 +190,24 @@ def window_nodes(grid, centre, half, n=_ZOOM_NODES):
     bn = a[:, 1:2] + (b[:, 1:2] - a[:, 1:2]) * t if grid.has_beta else np.full((k, 1), np.nan)
     lte = _edges(lt)
     be = _edges(bn) if grid.has_beta else np.full((k, 2), np.nan)
-    LT = np.repeat(lt, bn.shape[1], axis=1)
-    B = np.tile(bn, (1, n))
     g = grid.templates_on(lt, bn if grid.has_beta else None)
-    theta = grid.theta_of(np.exp(LT).ravel(), B.ravel())
-    valid = np.asarray(grid.model.valid(theta), bool).reshape(LT.shape) & np.all(np.isfinite(g), axis=-1)
+    theta = grid.theta_of(np.exp(np.repeat(lt, bn.shape[1], axis=1)).ravel(), np.tile(bn, (1, n)).ravel())
+    valid = np.asarray(grid.model.valid(theta), bool).reshape(k, -1) & np.all(np.isfinite(g), axis=-1)
+    # the prior is a product over T and beta: its log mass and the cell widths per
+    # axis, then an outer sum (T-major, as the band fluxes)
     wT = np.diff(np.exp(lte), axis=1)
-    wb = np.diff(be, axis=1) if grid.has_beta else np.ones((k, 1))
-    WT = np.repeat(wT, bn.shape[1], axis=1)
-    WB = np.tile(wb, (1, n))
     with np.errstate(divide="ignore"):
-        lp = grid.node_log_prior(np.exp(LT), B if grid.has_beta else None, WT, WB)
-    lp = np.where(valid, lp, -np.inf)
+        lpT = grid.prior["T"].logpdf(np.exp(lt)) + np.log(wT)
+        lwT = np.log(wT)
+        if grid.has_beta:
+            wb = np.diff(be, axis=1)
+            lpb, lwb = grid.prior["beta"].logpdf(bn) + np.log(wb), np.log(wb)
+        else:
+            lpb = lwb = np.zeros((k, 1))
+    lp = np.where(valid, (lpT[:, :, None] + lpb[:, None, :]).reshape(k, -1), -np.inf)
+    log_width = (lwT[:, :, None] + lwb[:, None, :]).reshape(k, -1)
     return Nodes(lt=lt, lt_edges=lte, beta=bn, beta_edges=be, g=np.where(valid[..., None], g, 0.0),
-                 log_prior=lp, log_density=lp - np.log(WT * WB), affine=True)
+                 log_prior=lp, log_density=lp - log_width, affine=True)
 
 
 def _edges(x):
