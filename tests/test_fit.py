@@ -357,10 +357,12 @@ def test_block_of_50_equals_50_blocks_of_1(bands, model):
 def test_bright_sources_are_not_lost_by_the_zoom():
     # Regression (issue: S/N 1000, six monochromatic bands, no calibration: pulls of
     # tens of sd, all flagged poor_fit). Truths on the cold/steep corner that failed.
+    # A poor_fit flag is allowed only where the least-squares chi^2 is itself improbable.
     # Reference: scipy.optimize.least_squares started at the refined MAP may not find a
     # chi^2 lower by more than 0.05 (the refined MAP is the better of the best node and
     # the package's optimiser); |pull| < 4 for every source.
     from scipy.optimize import least_squares
+    from scipy.stats import chi2 as chi2_dist
 
     from sedtemp.bands import Band, BandSet
     from sedtemp.models import ModifiedBlackbody
@@ -373,7 +375,7 @@ def test_bright_sources_are_not_lost_by_the_zoom():
     theta = np.column_stack([rng.uniform(-0.5, 0.5, n), rng.uniform(8, 40, n), rng.uniform(1.0, 2.5, n)])
     f, e, _ = simulate_photometry(bs, mod, theta, snr=1000, seed=13)
     g = grid_posterior(f * u.Jy, e * u.Jy, bs, model=mod, seed=3)
-    assert not any("poor_fit" in fl or "grid_too_coarse" in fl for fl in g["flags"])
+    assert not any("grid_too_coarse" in fl for fl in g["flags"])
     for j, name in enumerate(("T", "beta")):
         pull = (g[f"{name}_median"] - theta[:, j + 1]) / (0.5 * (g[f"{name}_p84"] - g[f"{name}_p16"]))
         assert np.all(np.abs(pull) < 4)
@@ -384,6 +386,10 @@ def test_bright_sources_are_not_lost_by_the_zoom():
         x0 = [g["log10_mass_map"][i], g["T_map"][i], g["beta_map"][i]]
         ls = least_squares(resid, x0, x_scale=[1e-3, 1e-2, 1e-3], xtol=1e-12, ftol=1e-12)
         assert g["chi2_map"][i] <= 2 * ls.cost + 0.05
+        # 'poor_fit' only where the data themselves fit badly: the chi^2 of the least-squares
+        # optimum (3 dof) in its upper 2 % tail (source 0 here: chi^2 13.1, p = 0.004)
+        if "poor_fit" in g["flags"][i]:
+            assert chi2_dist.sf(2 * ls.cost, 3) < 0.02
 
 
 def test_ess_and_rhat_agree_with_arviz(fit):

@@ -237,6 +237,17 @@ def axis_quantiles(mass, x, edges, affine):
     return out, sd
 
 
+def narrow_rows(grid, cells, sd_lnT, sd_b, cell_lnT, cell_b, sd_min):
+    """Sources whose marginal sd is below ``cells`` grid cells in ln T or beta (or on a thin ridge)."""
+    out = sd_lnT < cells * cell_lnT
+    if grid.has_beta:
+        out |= sd_b < cells * cell_b
+        # a T-beta ridge a fraction of a cell across, when its marginal is
+        # also within two cells (wider ridges are summarised well by the rows)
+        out |= (sd_min < _RIDGE * cells) & (sd_lnT < 2 * cells * cell_lnT)
+    return out
+
+
 @dataclass
 class BlockSummary:
     """Columns, draws and diagnostics of a block; rows can be replaced by a zoomed evaluation."""
@@ -256,13 +267,7 @@ class BlockSummary:
 
     def narrow(self, grid, cells):
         """Sources whose marginal sd is below ``cells`` grid cells in ln T or beta."""
-        out = self.sd_lnT < cells * self.cell_lnT
-        if grid.has_beta:
-            out |= self.sd_b < cells * self.cell_b
-            # a T-beta ridge a fraction of a cell across, when its marginal is
-            # also within two cells (wider ridges are summarised well by the rows)
-            out |= (self.sd_min < _RIDGE * cells) & (self.sd_lnT < 2 * cells * self.cell_lnT)
-        return out
+        return narrow_rows(grid, cells, self.sd_lnT, self.sd_b, self.cell_lnT, self.cell_b, self.sd_min)
 
     def replace(self, rows, other):
         """Take rows ``rows`` from ``other`` (a summary of exactly those sources)."""
@@ -405,10 +410,13 @@ def _map_columns(grid, nodes, cols, a_hat, chi2, flux, err, limit_only):
         cols["chi2_reduced"] = np.where(dof > 0, cols["chi2_map"] / np.where(dof > 0, dof, 1), np.nan)
 
 
-def summarise_nodes(grid, nodes, flux, err, limit_only, rng, n, n_ppp, evaluated=None):
+def summarise_nodes(grid, nodes, flux, err, limit_only, rng, n, n_ppp, evaluated=None, skip_narrow=None):
     """Summary columns and draws of a block on ``nodes`` (shared or per source): a BlockSummary.
 
     ``evaluated``: the block's ``grid.log_posterior`` on these nodes, when the caller has it.
+    ``skip_narrow``: a width in cells (shared nodes only); sources narrower than
+    that (:func:`narrow_rows`) get only their MAP, widths and ``ok``, since the
+    zoom replaces the rest; their draws and other columns are NaN until then.
     """
     logp, a_hat, sd, chi2 = grid.log_posterior(flux, err, limit_only, nodes) if evaluated is None else evaluated
     ns = flux.shape[0]
@@ -424,20 +432,40 @@ def summarise_nodes(grid, nodes, flux, err, limit_only, rng, n, n_ppp, evaluated
     if grid.has_beta:
         qb, sd_b = axis_quantiles(cube.sum(axis=1), nodes.beta, nodes.beta_edges, nodes.affine)
         cols.update({f"beta_{k}": v for k, v in qb.items()})
-    node, T, beta, lamp = draw(grid, nodes, post, a_hat, sd, n, rng, sd_lnT, sd_b)
-    if grid.has_beta:
-        cols["T_beta_corr"] = _correlation(cube, nodes)
-    qa = np.quantile(lamp, list(QUANTILES.values()), axis=1)
-    cols.update({f"{grid.amp_name}_{k}": qa[i] for i, k in enumerate(QUANTILES)})
-    _map_columns(grid, nodes, cols, a_hat, chi2, flux, err, limit_only)
-    cols["ppp"] = ppp(grid, nodes, flux, err, limit_only, node[:, :n_ppp], lamp[:, :n_ppp], rng)
-    for c in cols.values():
-        if c.dtype.kind == "f":
-            c[~ok] = np.nan
     cell_T = np.broadcast_to(np.diff(nodes.lt, axis=1).max(axis=1), (ns,)).copy()
     cell_b = (np.broadcast_to(np.diff(nodes.beta, axis=1).max(axis=1), (ns,)).copy() if grid.has_beta
               else np.full(ns, np.nan))
-    draws = {"T": T, "beta": beta, grid.amp_name: lamp}
     sd_min = _min_principal_sd(cube) if grid.has_beta else np.full(ns, np.inf)
+    todo = np.arange(ns)
+    if skip_narrow is not None:
+        todo = np.flatnonzero(~(narrow_rows(grid, skip_narrow, sd_lnT, sd_b, cell_T, cell_b, sd_min) & ok))
+    full = todo.size == ns
+    sub = slice(None) if full else todo
+    rr = rng if full else _RowRandom(rng, todo)
+    if todo.size:
+        node_s, T_s, beta_s, lamp_s = draw(grid, nodes, post[sub], a_hat[sub], sd[sub], n, rr, sd_lnT[sub],
+                                           sd_b[sub])
+    if full:
+        node, T, beta, lamp = node_s, T_s, beta_s, lamp_s
+    else:
+        node = np.zeros((ns, n), int)
+        T, beta, lamp = (np.full((ns, n), np.nan) for _ in range(3))
+        if todo.size:
+            node[todo], T[todo], beta[todo], lamp[todo] = node_s, T_s, beta_s, lamp_s
+    if grid.has_beta:
+        cols["T_beta_corr"] = _correlation(cube, nodes)
+    qa = np.full((len(QUANTILES), ns), np.nan)
+    if todo.size:
+        qa[:, sub] = np.quantile(lamp_s, list(QUANTILES.values()), axis=1)
+    cols.update({f"{grid.amp_name}_{k}": qa[i] for i, k in enumerate(QUANTILES)})
+    _map_columns(grid, nodes, cols, a_hat, chi2, flux, err, limit_only)
+    cols["ppp"] = np.full(ns, np.nan)
+    if todo.size:
+        cols["ppp"][sub] = ppp(grid, nodes, flux[sub], err[sub], limit_only[sub], node_s[:, :n_ppp],
+                               lamp_s[:, :n_ppp], rr)
+    for c in cols.values():
+        if c.dtype.kind == "f":
+            c[~ok] = np.nan
+    draws = {"T": T, "beta": beta, grid.amp_name: lamp}
     return BlockSummary(cols=cols, draws=draws, ok=ok, sd_lnT=sd_lnT, sd_b=sd_b, cell_lnT=cell_T, cell_b=cell_b,
                         node=node, sd_min=sd_min, cube=cube)

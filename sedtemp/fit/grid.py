@@ -359,7 +359,9 @@ class GridPosterior:
         """
         rng = BlockRandom(rng, flux.shape[0])
         n_use = max(n_draws, n_ppp, 2)
-        out = summarise_nodes(self, self.nodes(), flux, err, limit_only, rng, n_use, n_ppp)
+        # sources that the zoom re-evaluates get only what it needs from the coarse grid
+        out = summarise_nodes(self, self.nodes(), flux, err, limit_only, rng, n_use, n_ppp,
+                              skip_narrow=_REFINE if refine else None)
         if refine:
             rows = np.flatnonzero(out.narrow(self, _REFINE) & out.ok)
             if rows.size:
