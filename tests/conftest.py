@@ -3,14 +3,13 @@
 import astropy.units as u
 import numpy as np
 import pytest
+from invented import CATALOG_WAVE, TRUTH, catalog_workflow_data, invented_catalog, simulate
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
-from sedtemp.simulate import simulate_photometry
 
 #: Invented band set (top-hats, 30 % wide in frequency) spanning the far-IR/submm.
 WAVELENGTHS_UM = (70, 100, 160, 250, 350, 500)
-TRUTH = {"log10_mass": 0.0, "T": 20.0, "beta": 1.8}
 
 
 @pytest.fixture(scope="session")
@@ -23,20 +22,12 @@ def model():
     return ModifiedBlackbody(distance=300 * u.pc)
 
 
-def simulate(model, bands, theta, snr, rng, calibration=None):
-    """Band fluxes (Jy) of parameter rows ``theta`` with Gaussian noise at ``snr``: the tests'
-    shorthand for :func:`sedtemp.simulate.simulate_photometry` drawing from the generator ``rng``."""
-    return simulate_photometry(bands, model, theta, snr=snr, calibration=calibration, seed=rng)
-
-
 @pytest.fixture(scope="session")
 def source(model, bands):
     theta = np.array([[TRUTH["log10_mass"], TRUTH["T"], TRUTH["beta"]]])
     f, err, _ = simulate(model, bands, theta, 20.0, np.random.default_rng(11))
     return f[0], err[0]
 
-
-from invented import CATALOG_WAVE, catalog_workflow_data, invented_catalog
 
 
 @pytest.fixture(scope="session")

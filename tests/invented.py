@@ -8,6 +8,16 @@ from sedtemp.bands import Band, BandSet
 from sedtemp.models import ModifiedBlackbody
 from sedtemp.simulate import simulate_photometry
 
+#: The invented source of the fit and comparison tests.
+TRUTH = {"log10_mass": 0.0, "T": 20.0, "beta": 1.8}
+
+
+def simulate(model, bands, theta, snr, rng, calibration=None):
+    """Band fluxes (Jy) of parameter rows ``theta`` with Gaussian noise at ``snr``: the tests'
+    shorthand for :func:`sedtemp.simulate.simulate_photometry` drawing from the generator ``rng``."""
+    return simulate_photometry(bands, model, theta, snr=snr, calibration=calibration, seed=rng)
+
+
 #: Bands of the invented catalogue used by the pipeline and CLI tests.
 CATALOG_WAVE = (70, 160, 250, 350, 500)
 

@@ -12,7 +12,7 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
-from conftest import simulate
+from invented import simulate
 
 from sedtemp.bands import Band, BandSet
 from sedtemp.compare import (

@@ -5,7 +5,7 @@ import warnings
 import astropy.units as u
 import numpy as np
 import pytest
-from conftest import TRUTH, simulate
+from invented import TRUTH, simulate
 
 from sedtemp.errors import (
     ConvergenceWarning,

@@ -188,7 +188,7 @@ def conditional(F, iv, g, masks, d2, sums=None):
     if parts:
         a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)
         a_hat0 *= a_hat0
-    for (ak, bk), dd in zip(parts, d2):  # a few calibration groups (Woodbury, diagonal core)
+    for (ak, bk), dd in zip(parts, d2, strict=True):  # a few calibration groups (Woodbury, diagonal core)
         kap = dd * a_hat0
         den = 1.0 + kap * ak
         kap /= den
@@ -354,7 +354,7 @@ def ppp(grid, nodes, flux, err, limit_only, node, lamp, rng):
     k = len(grid._d2)
     z = rng.standard_normal((*model.shape[:2], model.shape[2] + k))
     noise = z[..., : model.shape[2]] * sig
-    for j, (m, d2) in enumerate(zip(grid._masks, grid._d2)):
+    for j, (m, d2) in enumerate(zip(grid._masks, grid._d2, strict=True)):
         noise = noise + model * m * (np.sqrt(d2) * z[..., model.shape[2] + j])[..., None]
     chi_obs = chi2_of(grid, flux, err, limit_only, model)
     iv = np.where(det, 1.0 / np.where(det, err, 1.0) ** 2, 0.0)[:, None, :]

@@ -20,7 +20,7 @@ def require_bands(phot: Photometry, n_free: int, names, source_label=None):
     """Raise InputError if the (single) source has fewer usable bands than parameters."""
     n = int(phot.n_usable[0])
     if n < n_free:
-        used = [b for b, m, lim in zip(names, phot.missing[0], phot.limit_only[0]) if not (m or lim)]
+        used = [b for b, m, lim in zip(names, phot.missing[0], phot.limit_only[0], strict=True) if not (m or lim)]
         who = f"source {source_label!r}" if source_label is not None else "the source"
         raise InputError(
             f"{who} has {n} usable band(s) {used} but the model has {n_free} free parameters; "

@@ -452,7 +452,7 @@ def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration
         cols, extra = grid.summarise(phot.flux[rows], err, phot.limit_only[rows], n_draws=n_draws,
                                      n_ppp=n_ppp, rng=[seeds[i] for i in rows])
         parts.append(cols)
-        flags.update(zip(rows, extra["flags"]))
+        flags.update(zip(rows, extra["flags"], strict=True))
     out = Table()
     out["id"] = ids
     keys = parts[0].keys() if parts else grid.column_names()

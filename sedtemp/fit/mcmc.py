@@ -138,7 +138,7 @@ class MarginalLogPosterior:
 
     def full_theta(self, x, log_amp=None):
         """(n, n_free) -> (n, n_params) with the amplitude column (0 unless given)."""
-        cols = dict(zip(self.free, np.atleast_2d(x).T))
+        cols = dict(zip(self.free, np.atleast_2d(x).T, strict=True))
         cols[self.amp_name] = np.zeros(len(x)) if log_amp is None else log_amp
         return np.column_stack([cols[n] for n in self.names])
 
@@ -462,12 +462,12 @@ def _make_result(chain, lnp_chain, sampler, burn, converged, post, model, bands,
     flags = _flags(samples, names, prior, ppp, converged, kept.shape[0], ess, rh, ess_target)
     return FitResult(
         samples=samples, log_prob=lnp, param_names=names, units=dict(model.param_units),
-        ess={n: float(e) for n, e in zip(names, ess)}, tau={n: float(t) for n, t in zip(names, tau)},
+        ess={n: float(e) for n, e in zip(names, ess, strict=True)}, tau={n: float(t) for n, t in zip(names, tau, strict=True)},
         acceptance_fraction=float(np.mean(sampler.acceptance_fraction)), converged=bool(converged),
         flags=tuple(flags), map_params=map_params, chi2_map=chi2_map, dof=n_used - len(names), ppp=ppp,
         n_bands_used=n_used, model=model, bands=bands, flux_si=phot.flux[0], err_si=phot.err[0],
         limit_only=phot.limit_only[0], chain=chain, n_steps=chain.shape[0], n_walkers=nw, burn=burn,
-        seed=seed, rhat={n: float(r) for n, r in zip(names, rh)}, log_prob_chain=lnp_chain,
+        seed=seed, rhat={n: float(r) for n, r in zip(names, rh, strict=True)}, log_prob_chain=lnp_chain,
         sampled=tuple(post.free) if isinstance(post, MarginalLogPosterior) else names,
     )
 

@@ -120,7 +120,7 @@ class FitResult:
         out = {}
         for name in self.param_names:
             q = np.quantile(self.samples[name], list(QUANTILES.values()))
-            out.update({f"{name}_{k}": float(v) for k, v in zip(QUANTILES, q)})
+            out.update({f"{name}_{k}": float(v) for k, v in zip(QUANTILES, q, strict=True)})
             out[f"{name}_map"] = float(self.map_params[name])
         if "T" in self.samples and "beta" in self.samples:
             out["T_beta_corr"] = float(np.corrcoef(self.samples["T"], self.samples["beta"])[0, 1])
