@@ -112,19 +112,23 @@ def take(arr, idx):
     return arr[0][idx] if arr.shape[0] == 1 else np.take_along_axis(arr, idx, axis=1)
 
 
-_GROUP_COLUMNS: dict = {}
+_GROUP_WEIGHTS: dict = {}
 
 
-def _group_columns(masks, nb):
-    """Band columns of each (disjoint) calibration group and of no group, cached per mask pattern."""
+def _group_weights(masks, nb):
+    """0/1 band weights of each (disjoint) calibration group and of the bands in no group.
+
+    Cached per mask pattern. The last entry (bands in no group) is None when
+    every band is in a group.
+    """
     key = (nb, masks.shape, masks.tobytes())
-    hit = _GROUP_COLUMNS.get(key)
+    hit = _GROUP_WEIGHTS.get(key)
     if hit is None:
-        groups = [np.flatnonzero(m > 0) for m in masks]
-        rest = np.setdiff1d(np.arange(nb), np.concatenate(groups) if groups else np.zeros(0, int))
-        if len(_GROUP_COLUMNS) > 256:
-            _GROUP_COLUMNS.clear()
-        hit = _GROUP_COLUMNS[key] = (groups, rest)
+        groups = [(m > 0).astype(float) for m in masks]
+        rest = 1.0 - np.sum(groups, axis=0) if groups else np.ones(nb)
+        if len(_GROUP_WEIGHTS) > 256:
+            _GROUP_WEIGHTS.clear()
+        hit = _GROUP_WEIGHTS[key] = (groups, rest if rest.any() else None)
     return hit
 
 
@@ -141,17 +145,17 @@ def group_sums(F, iv, g, masks):
         The same sums restricted to each calibration group (``masks`` rows).
     """
     if g.ndim == 2:
-        def mm(w, gg, cols):
-            return w[:, cols] @ gg[:, cols].T
-    else:
-        def mm(w, gg, cols):
-            return np.einsum("sb,snb->sn", w[:, cols], gg[..., cols])
-    groups, rest = _group_columns(masks, F.shape[1])
+        def mm(w, gg):
+            return w @ gg.T
+    else:  # per-source templates: one batched matrix-vector product
+        def mm(w, gg):
+            return np.matmul(gg, w[:, :, None])[..., 0]
+    groups, rest = _group_weights(masks, F.shape[1])
     Fiv = F * iv
     g2 = g * g
-    parts = [(mm(iv, g2, cols), mm(Fiv, g, cols)) for cols in groups]  # per-group a_g, b_g
-    if rest.size:
-        a, b = mm(iv, g2, rest), mm(Fiv, g, rest)
+    parts = [(mm(iv * m, g2), mm(Fiv * m, g)) for m in groups]  # per-group a_g, b_g
+    if rest is not None:
+        a, b = mm(iv * rest, g2), mm(Fiv * rest, g)
     else:
         a = np.zeros(parts[0][0].shape)
         b = np.zeros_like(a)

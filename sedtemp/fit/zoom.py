@@ -192,7 +192,8 @@ def window_nodes(grid, centre, half, n=_ZOOM_NODES):
     be = _edges(bn) if grid.has_beta else np.full((k, 2), np.nan)
     g = grid.templates_on(lt, bn if grid.has_beta else None)
     theta = grid.theta_of(np.exp(np.repeat(lt, bn.shape[1], axis=1)).ravel(), np.tile(bn, (1, n)).ravel())
-    valid = np.asarray(grid.model.valid(theta), bool).reshape(k, -1) & np.all(np.isfinite(g), axis=-1)
+    # (a sum over bands is finite exactly when every band flux is: band fluxes are far below overflow)
+    valid = np.asarray(grid.model.valid(theta), bool).reshape(k, -1) & np.isfinite(g @ np.ones(g.shape[-1]))
     # the prior is a product over T and beta: its log mass and the cell widths per
     # axis, then an outer sum (T-major, as the band fluxes)
     wT = np.diff(np.exp(lte), axis=1)
