@@ -254,9 +254,15 @@ class RunState:
         lines = "".join(f"{k} {v}\n" for k, v in sorted(self.parts.items()))
         atomic_write_text(self.parts_dir / JOURNAL, lines)
 
-    def read_parts(self) -> list[Table]:
-        """The valid parts; damaged or duplicate ones are reported (``damaged``), removed, refitted."""
-        tabs, seen = [], set()
+    def read_parts(self, keep=None) -> list[Table]:
+        """The valid parts; damaged or duplicate ones are reported (``damaged``), removed, refitted.
+
+        ``keep``: called with each valid part (in file-name order, i.e. by first
+        row) instead of collecting them, so that no more than one is in memory;
+        the list returned is then empty.
+        """
+        tabs: list[Table] = []
+        seen: set = set()
         for path in sorted(self.parts_dir.glob(_PART_GLOB)):
             tab, why = self._read_one(path, seen)
             if tab is None:
@@ -266,7 +272,10 @@ class RunState:
                 self.parts.pop(path.name, None)
                 continue
             seen.update(int(r) for r in tab["_row"])
-            tabs.append(tab)
+            if keep is None:
+                tabs.append(tab)
+            else:
+                keep(tab)
         self._save()
         return tabs
 
