@@ -517,7 +517,7 @@ def _write_streamed(finished: _Finished, wf: Workflow, mapped: MappedCatalog, ou
         binary = fmt in ("fits", "votable")
         fh = stack.enter_context(tmp.open("wb") if binary else tmp.open("w", encoding="utf-8", newline=""))
         sink = _results_sink(fmt, fh, n)
-        dsink = None
+        dsink: _H5DrawsSink | _FitsSink | None = None
         if keep_draws:
             dtmp = stack.enter_context(atomic_path(draws_path))
             if h5py is not None:
@@ -611,7 +611,8 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
 def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
     t0 = time.perf_counter()
     tabs: list[Table] = []  # in memory only without an output folder
-    state = finished = None
+    state: RunState | None = None
+    finished: _Finished | None = None
     done = np.zeros(len(mapped), dtype=bool)
     if out is not None:
         if restart and (out / SOURCES_DIR).exists():  # no figure of the earlier run may be left over
@@ -627,7 +628,7 @@ def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
     n_keep = wf.output["n_keep"] if (keep_draws or wf.output["keep_draws"] or wf.population.get("enabled")) else 0
 
     def on_done(tab):
-        if state is None:
+        if state is None or finished is None:
             tabs.append(tab)
             return
         state.write_part(tab)
@@ -645,7 +646,7 @@ def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
 
             with Progress("fit", len(mapped), n_resumed, progress) as bar:
                 _fit_all(get_executor, wf, mapped, todo, on_done, bar, n_keep)
-            if out is None:
+            if out is None or finished is None:
                 return _finalise(tabs, wf, mapped) if tabs else _empty(mapped, wf)
             seconds = time.perf_counter() - t0
             if finished.items:

@@ -203,6 +203,7 @@ class RunState:
         self.parts_dir = self.out / PARTS_DIR
         self.file = self.out / STATE_FILE
         self.digests = input_digests(wf, mapped)
+        self.n_sources = len(mapped)
         self.parts: dict[str, str] = {}
         self.damaged: list[str] = []
         self.removed_temporaries: list[str] = []
@@ -262,7 +263,7 @@ class RunState:
         the list returned is then empty.
         """
         tabs: list[Table] = []
-        seen: set = set()
+        seen = np.zeros(self.n_sources, dtype=bool)  # rows some valid part holds
         for path in sorted(self.parts_dir.glob(_PART_GLOB)):
             tab, why = self._read_one(path, seen)
             if tab is None:
@@ -271,7 +272,7 @@ class RunState:
                 path.unlink(missing_ok=True)
                 self.parts.pop(path.name, None)
                 continue
-            seen.update(int(r) for r in tab["_row"])
+            seen[np.asarray(tab["_row"], dtype=int)] = True
             if keep is None:
                 tabs.append(tab)
             else:
@@ -289,8 +290,10 @@ class RunState:
             tab = unmasked(Table.read(path, format="ascii.ecsv"))
         except Exception as err:  # noqa: BLE001 - any read failure means the part is unusable
             return None, f"unreadable: {type(err).__name__}"
-        rows = {int(r) for r in tab["_row"]}
-        if rows & seen:
+        rows = np.asarray(tab["_row"], dtype=int)
+        if rows.size and (rows.min() < 0 or rows.max() >= seen.size):
+            return None, f"holds rows beyond the catalogue's {seen.size} sources"
+        if np.any(seen[rows]):
             return None, "holds sources another checkpoint already has"
         self.parts[path.name] = sha
         return tab, ""
