@@ -177,3 +177,24 @@ def test_chunks_never_span_a_gap():
     todo = np.array([4, 5, 6, 7, 12, 13])
     batch._fit_all(lambda: (batch.InlineExecutor(), None), wf, mapped, todo, on_done, Bar(), 0)
     assert sorted(seen) == [[4, 5, 6, 7], [12, 13]]
+
+
+def test_assembled_chunk_is_described_once():
+    """assemble builds the columns with the metadata describe gives; describing again changes nothing."""
+    import io
+
+    from sedtemp.pipeline.schema import describe
+
+    wf = make_workflow(keep_columns=["F70"])
+    chunk = process_chunk(wf, map_catalog(make_catalog(5), wf), n_keep=5)
+    bare = chunk.copy()
+    for c in bare.colnames:
+        if c != "F70":
+            bare[c].unit, bare[c].description, bare[c].format, bare[c].meta = None, None, None, {}
+
+    def text(t):
+        buf = io.StringIO()
+        t.write(buf, format="ascii.ecsv")
+        return buf.getvalue()
+
+    assert text(chunk) == text(describe(bare)) == text(describe(chunk.copy()))
