@@ -203,6 +203,7 @@ class RunState:
         self.parts_dir = self.out / PARTS_DIR
         self.file = self.out / STATE_FILE
         self.digests = input_digests(wf, mapped)
+        self.n_sources = len(mapped)
         self.parts: dict[str, str] = {}
         self.damaged: list[str] = []
         self.removed_temporaries: list[str] = []
@@ -254,9 +255,15 @@ class RunState:
         lines = "".join(f"{k} {v}\n" for k, v in sorted(self.parts.items()))
         atomic_write_text(self.parts_dir / JOURNAL, lines)
 
-    def read_parts(self) -> list[Table]:
-        """The valid parts; damaged or duplicate ones are reported (``damaged``), removed, refitted."""
-        tabs, seen = [], set()
+    def read_parts(self, keep=None) -> list[Table]:
+        """The valid parts; damaged or duplicate ones are reported (``damaged``), removed, refitted.
+
+        ``keep``: called with each valid part (in file-name order, i.e. by first
+        row) instead of collecting them, so that no more than one is in memory;
+        the list returned is then empty.
+        """
+        tabs: list[Table] = []
+        seen = np.zeros(self.n_sources, dtype=bool)  # rows some valid part holds
         for path in sorted(self.parts_dir.glob(_PART_GLOB)):
             tab, why = self._read_one(path, seen)
             if tab is None:
@@ -265,8 +272,11 @@ class RunState:
                 path.unlink(missing_ok=True)
                 self.parts.pop(path.name, None)
                 continue
-            seen.update(int(r) for r in tab["_row"])
-            tabs.append(tab)
+            seen[np.asarray(tab["_row"], dtype=int)] = True
+            if keep is None:
+                tabs.append(tab)
+            else:
+                keep(tab)
         self._save()
         return tabs
 
@@ -280,8 +290,10 @@ class RunState:
             tab = unmasked(Table.read(path, format="ascii.ecsv"))
         except Exception as err:  # noqa: BLE001 - any read failure means the part is unusable
             return None, f"unreadable: {type(err).__name__}"
-        rows = {int(r) for r in tab["_row"]}
-        if rows & seen:
+        rows = np.asarray(tab["_row"], dtype=int)
+        if rows.size and (rows.min() < 0 or rows.max() >= seen.size):
+            return None, f"holds rows beyond the catalogue's {seen.size} sources"
+        if np.any(seen[rows]):
             return None, "holds sources another checkpoint already has"
         self.parts[path.name] = sha
         return tab, ""

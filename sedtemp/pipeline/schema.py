@@ -20,11 +20,12 @@ comparison's T_eq posterior).
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import astropy.units as u
 import numpy as np
-from astropy.table import Table
+from astropy.table import Column, Table
 
 __all__ = [
     "CLASS_COLUMN",
@@ -168,6 +169,20 @@ def _renamed(name):
     return RENAMES.get(name, name)
 
 
+@functools.cache
+def _unit(text: str):
+    """The parsed unit of a schema unit string ("" -> None: dimensionless columns carry no unit)."""
+    return u.Unit(text) if text else None
+
+
+def _column(name, data) -> Column:
+    """A schema column built with the metadata :func:`describe` gives it (no second pass needed)."""
+    s = spec(name)
+    unit = _unit(s.unit) if s.unit is not None and data.dtype.kind == "f" else None
+    return Column(data, name=name, unit=unit, description=s.description, format=s.format,
+                  meta={"ucd": s.ucd} if s.ucd else None)
+
+
 def _values(name, vals):
     """One column from per-source values (None where absent), typed by the schema."""
     s = spec(name)
@@ -207,14 +222,21 @@ def assemble(mapped, parts, status, reason, *, draws=None, n_keep=0, workflow=No
     tab = Table()
     tab[mapped.id_column] = mapped.ids
     values: dict = {}
+    names: dict = {}  # stage key -> column name (renamed once per key, not once per cell)
     for rows in parts:
         for i, r in enumerate(rows):
             for k, v in r.items():
-                values.setdefault(_renamed(k), [None] * n)[i] = v
+                name = names.get(k)
+                if name is None:
+                    name = names[k] = _renamed(k)
+                col = values.get(name)
+                if col is None:
+                    col = values[name] = [None] * n
+                col[i] = v
     values["status"] = list(status)
     values["reason"] = list(reason)
     for name in order(values):
-        tab[name] = _values(name, values[name])
+        tab[name] = _column(name, _values(name, values[name]))
     if draws is not None and n_keep:
         for k in sorted({k for d in draws if d is not None for k in d}):
             arr = np.full((n, n_keep), np.nan)
@@ -222,12 +244,12 @@ def assemble(mapped, parts, status, reason, *, draws=None, n_keep=0, workflow=No
                 if d is not None and k in d:
                     v = np.asarray(d[k], float)[:n_keep]
                     arr[i, :v.size] = v
-            tab[DRAW_PREFIX + k] = arr
+            tab[DRAW_PREFIX + k] = _column(DRAW_PREFIX + k, arr)
     for name, col in (getattr(mapped, "kept", None) or {}).items():
         tab[name] = col
     tab["_row"] = mapped.rows
     tab["_key"] = mapped.keys
-    return describe(tab)
+    return describe(tab)  # a no-op on the columns built above; the kept ones the schema knows
 
 
 def order(names) -> list:
@@ -236,16 +258,24 @@ def order(names) -> list:
 
 
 def describe(tab: Table) -> Table:
-    """Set unit, description, format and (VOTable) UCD of every schema column, in place; ``tab``."""
+    """Set unit, description, format and (VOTable) UCD of every schema column, in place; ``tab``.
+
+    Cheap on a table already described (a chunk described again on its way to
+    the results file): only what differs is set (setting a format makes astropy
+    format the column to check it).
+    """
     for name in tab.colnames:
         if not known(name):
             continue
         s = spec(name)
         col = tab[name]
         if s.unit is not None and col.dtype.kind == "f":
-            col.unit = u.Unit(s.unit) if s.unit else None
+            unit = _unit(s.unit)
+            if col.unit is not unit:
+                col.unit = unit
         col.description = s.description
-        col.format = s.format
+        if col.format != s.format:
+            col.format = s.format
         if s.ucd:
             col.meta["ucd"] = s.ucd
     return tab
