@@ -18,14 +18,21 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import TYPE_CHECKING, Literal, overload
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ._numerics import log_trapezoid_weights
 from ._units import to_hz
 from .constants import NU_LYMAN
 from .errors import InputError
 from .radiation import AttenuatedField, RadiationField, ScaledField
+
+if TYPE_CHECKING:
+    import astropy.units as u
+
+    from .opacity import Opacity
 
 __all__ = [
     "BETA_NODE_STEP",
@@ -49,7 +56,7 @@ BETA_NODE_STEP = 0.01
 _DIRECT_MAX = 16  # up to this many distinct betas, the power is integrated at each directly
 
 
-def frequency_grid(nu_grid=None):
+def frequency_grid(nu_grid: u.Quantity | ArrayLike | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(nu in Hz, weights w with sum(w f) ~= int f dnu) of a grid; ``None``: :data:`DEFAULT_NU_GRID_HZ`."""
     if nu_grid is None:
         nu = DEFAULT_NU_GRID_HZ
@@ -195,8 +202,21 @@ def _interpolate(table, how, nodes, aux, b, col):
     return np.where(table[j[:, :, None], col[:, None, :]] > 0, np.exp(out), 0.0)
 
 
-def absorbed_power_chunk(fields: Sequence[RadiationField], opacity, beta, *, nu_grid=None,
-                         extrapolated: bool = False):
+@overload
+def absorbed_power_chunk(fields: Sequence[RadiationField], opacity: Opacity, beta: ArrayLike, *,
+                         nu_grid: u.Quantity | ArrayLike | None = None,
+                         extrapolated: Literal[False] = False) -> np.ndarray: ...
+@overload
+def absorbed_power_chunk(fields: Sequence[RadiationField], opacity: Opacity, beta: ArrayLike, *,
+                         nu_grid: u.Quantity | ArrayLike | None = None,
+                         extrapolated: Literal[True]) -> tuple[np.ndarray, np.ndarray]: ...
+@overload
+def absorbed_power_chunk(fields: Sequence[RadiationField], opacity: Opacity, beta: ArrayLike, *,
+                         nu_grid: u.Quantity | ArrayLike | None = None,
+                         extrapolated: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]: ...
+def absorbed_power_chunk(fields: Sequence[RadiationField], opacity: Opacity, beta: ArrayLike, *,
+                         nu_grid: u.Quantity | ArrayLike | None = None,
+                         extrapolated: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
     """Absorbed power per unit mass, per source, draw and field component (W kg^-1).
 
     Parameters
@@ -260,7 +280,7 @@ def absorbed_power_chunk(fields: Sequence[RadiationField], opacity, beta, *, nu_
 EXTRAPOLATION_WARN_FRACTION = 0.01
 
 
-def warn_extrapolated(fraction, opacity, who: str) -> None:
+def warn_extrapolated(fraction: ArrayLike, opacity: Opacity, who: str) -> None:
     """Issue one :class:`~sedtemp.errors.OpacityExtrapolationWarning` if any fraction exceeds the limit.
 
     Parameters

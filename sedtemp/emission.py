@@ -14,13 +14,18 @@ tests check against, is :func:`powerlaw_emitted_power`.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.interpolate import RectBivariateSpline
 
 from ._numerics import log_trapezoid_weights
 from .errors import InputError
 from .planck import _planck_nu_si, _powerlaw_planck_integral_si
+
+if TYPE_CHECKING:
+    from .opacity import Opacity
 
 __all__ = [
     "BETA_RANGE",
@@ -49,7 +54,7 @@ _MAX_CACHED = 32
 _CACHE: dict = {}
 
 
-def check_beta(beta, who: str) -> np.ndarray:
+def check_beta(beta: ArrayLike, who: str) -> np.ndarray:
     """``beta`` as a float array, refused (InputError) outside :data:`BETA_RANGE` or non-finite."""
     b = np.asarray(beta, dtype=float)
     lo, hi = BETA_RANGE
@@ -60,7 +65,8 @@ def check_beta(beta, who: str) -> np.ndarray:
     return b
 
 
-def powerlaw_emitted_power(temperature_k, beta, kappa0_si, nu0_hz):
+def powerlaw_emitted_power(temperature_k: ArrayLike, beta: ArrayLike, kappa0_si: float,
+                           nu0_hz: float) -> np.ndarray:
     """Exact emitted power (W/kg) of kappa0 (nu/nu0)^beta: 4 pi kappa0 int (nu/nu0)^beta B_nu dnu.
 
     Parameters
@@ -135,7 +141,7 @@ class EmissionTable:
         slope = self.spline.ev(x, b, dx=1)
         return self.spline.ev(x, b) + slope * (lnt - x), slope
 
-    def power(self, temperature_k, beta) -> np.ndarray:
+    def power(self, temperature_k: ArrayLike, beta: ArrayLike) -> np.ndarray:
         """P(T, beta) in W kg^-1 (broadcasting; T in K, >= 0)."""
         t, b = np.broadcast_arrays(np.asarray(temperature_k, float), np.asarray(beta, float))
         with np.errstate(divide="ignore"):
@@ -165,7 +171,7 @@ class EmissionTable:
             self._inverse = RectBivariateSpline(y, self.beta, lnt, kx=3, ky=3, s=0)
         return self._inverse
 
-    def temperature(self, power, beta) -> np.ndarray:
+    def temperature(self, power: ArrayLike, beta: ArrayLike) -> np.ndarray:
         """The T (K) with P(T, beta) = ``power`` (W kg^-1, >= 0); 0 where the power is 0.
 
         A first guess from the inverted table (:attr:`inverse`), then Newton's
@@ -205,7 +211,7 @@ def _build(opacity) -> EmissionTable:
     return EmissionTable(opacity.cache_key(), ln_t, beta, np.log(p))
 
 
-def emission_table(opacity) -> EmissionTable:
+def emission_table(opacity: Opacity) -> EmissionTable:
     """The (cached) emitted-power table of ``opacity``, built on first use in this process.
 
     Parameters

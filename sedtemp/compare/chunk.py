@@ -11,10 +11,12 @@ depend on its chunk) and the verdict strings are made per source.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
 
 import astropy.units as u
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..absorption import absorbed_power_chunk, warn_extrapolated
 from ..emission import check_beta, emission_table
@@ -24,6 +26,11 @@ from ..radiation import ISRF, RadiationField
 from .flags import classify, untrusted_flags, verdict
 from .thresholds import Thresholds
 from .uncertainty import _Shared, draw_factors, opacity_factors, resolve_uncertainty
+
+if TYPE_CHECKING:
+    from ..grains import Grain
+    from ..opacity import Opacity
+    from .uncertainty import FieldUncertaintySpec, OpacityUncertaintySpec
 
 __all__ = ["DRAWN", "W_PER_KG_IN_LSUN_PER_MSUN", "column_names", "compare_chunk"]
 
@@ -40,7 +47,8 @@ def column_names() -> list[str]:
     return [*names, "p_warmer", "stochastic_fraction", "T_eq_is_upper_bound", "opacity_extrapolated_fraction", "flag", "verdict"]
 
 
-def evaluate(T, b, fields, opacity, fac, bounded, q_op):
+def evaluate(T: np.ndarray, b: np.ndarray, fields: Sequence[RadiationField], opacity: Opacity, fac: np.ndarray,
+             bounded: np.ndarray, q_op: np.ndarray) -> dict[str, np.ndarray]:
     """Draw-level arrays (n, m) for sources with draws T, b, factors fac (n, m, k), bounded (n, k)."""
     n = T.shape[0]
     p_comp, p_x = absorbed_power_chunk(fields, opacity, b, extrapolated=True)
@@ -66,7 +74,10 @@ def evaluate(T, b, fields, opacity, fac, bounded, q_op):
     return out
 
 
-def columns_from(T, mass, ev, untrusted, bounded_any, th, stochastic_fraction=None, grain=None):
+def columns_from(T: np.ndarray, mass: np.ndarray | None, ev: Mapping[str, np.ndarray],
+                 untrusted: Sequence[Sequence[str]], bounded_any: np.ndarray, th: Thresholds,
+                 stochastic_fraction: ArrayLike | None = None, grain: Grain | None = None
+                 ) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray | None]:
     """Column arrays (n,) of many sources from their evaluated draws (see :func:`column_names`)."""
     n, m = T.shape
     t_eq = ev["T_eq"]
@@ -109,7 +120,10 @@ def _as_2d(x, shape, name, unit=None):
     return a
 
 
-def source_factors(spec, field, projected, m, seed, opacity_uncertainty, shared):
+def source_factors(spec: FieldUncertaintySpec, field: RadiationField, projected: bool, m: int,
+                   seed: np.random.SeedSequence | np.random.Generator,
+                   opacity_uncertainty: OpacityUncertaintySpec, shared: _Shared
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(factors (m, k), bounded (k,), opacity factors (m,)) of one source from its own stream."""
     rng = np.random.default_rng(seed)
     entries = resolve_uncertainty(spec, field, projected)
@@ -117,8 +131,11 @@ def source_factors(spec, field, projected, m, seed, opacity_uncertainty, shared)
     return fac, bounded, opacity_factors(opacity_uncertainty, m, rng, shared=shared)
 
 
-def compare_chunk(T_draws, beta_draws, fields: Sequence[RadiationField], opacity, *, mass_draws=None,
-                  field_uncertainty=None, opacity_uncertainty=None, projected=False, thresholds=None,
+def compare_chunk(T_draws: u.Quantity | ArrayLike, beta_draws: ArrayLike, fields: Sequence[RadiationField],
+                  opacity: Opacity, *, mass_draws: u.Quantity | ArrayLike | None = None,
+                  field_uncertainty: FieldUncertaintySpec = None,
+                  opacity_uncertainty: OpacityUncertaintySpec = None, projected: bool = False,
+                  thresholds: Thresholds | Mapping[str, float] | None = None,
                   fit_flags: Sequence[str] | None = None, seeds: Sequence[np.random.SeedSequence],
                   run_seed: int | None = None, keep_draws: bool = False) -> dict[str, np.ndarray]:
     """Compare the posterior draws of a chunk of sources with their equilibrium temperatures.

@@ -24,11 +24,17 @@ fallback on a 129-node table (log-uniform prior).
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.special import log_ndtr, ndtr, ndtri
 
 from ..errors import InputError
 from ..priors import LogUniformAmplitude, UniformAmplitude
+
+if TYPE_CHECKING:
+    from ..priors import _Prior1D
 
 __all__ = [
     "LogUniformLinearAmplitude",
@@ -63,7 +69,7 @@ _TRUNC = 8.0
 _TABLE = 129
 
 
-def quadrature_nodes(mu, s, a_lo, a_hi):
+def quadrature_nodes(mu: ArrayLike, s: ArrayLike, a_lo: float, a_hi: float) -> tuple[np.ndarray, np.ndarray]:
     """Nodes and log weights for int h(A) dA / A over [a_lo, a_hi].
 
     Parameters
@@ -129,7 +135,7 @@ class UniformLinearAmplitude:
         self.prior = prior
         self.a_lo, self.a_hi = 10.0**prior.low, 10.0**prior.high
 
-    def log_integral(self, mu, s, relevant=None):
+    def log_integral(self, mu: np.ndarray, s: np.ndarray, relevant: np.ndarray | None = None) -> np.ndarray:
         """log int exp(-(A - mu)^2 / 2 s^2) p(A) dA, elementwise; p the normalised prior (closed form)."""
         hi, lo = (self.a_hi - mu) / s, (self.a_lo - mu) / s
         out = _LOG_SQRT_2PI + np.log(s) - np.log(self.a_hi - self.a_lo)
@@ -140,7 +146,7 @@ class UniformLinearAmplitude:
                 out[near] += lhi + np.log(-np.expm1(np.minimum(llo - lhi, -1e-300)))
         return out
 
-    def draw(self, mu, s, uni):
+    def draw(self, mu: np.ndarray, s: np.ndarray, uni: np.ndarray) -> np.ndarray:
         """Draws of A given the node, from uniforms ``uni`` (..., n_uniform)."""
         lo, hi = ndtr((self.a_lo - mu) / s), ndtr((self.a_hi - mu) / s)
         p = np.clip(lo + uni[..., 0] * (hi - lo), 1e-300, 1 - 1e-16)
@@ -174,7 +180,7 @@ class LogUniformLinearAmplitude(UniformLinearAmplitude):
         low = np.log(_TAB_C / x_lo) + m * (_TAB_C - x_lo)
         return -0.5 * m * m + np.log(np.exp(kap) + low)
 
-    def log_integral(self, mu, s, relevant=None):
+    def log_integral(self, mu: ArrayLike, s: ArrayLike, relevant: np.ndarray | None = None) -> np.ndarray:
         """log int exp(-(A - mu)^2 / 2 s^2) dA / (A ln10 (high - low)), elementwise.
 
         ``relevant`` (bool, same shape): entries whose value matters; the others
@@ -212,7 +218,7 @@ class LogUniformLinearAmplitude(UniformLinearAmplitude):
             out[irr] = _logsumexp(lw + lh)
         return out - self._log_norm
 
-    def draw(self, mu, s, uni):
+    def draw(self, mu: ArrayLike, s: ArrayLike, uni: np.ndarray) -> np.ndarray:
         """Draws of A given the node (conditional ∝ N(A; mu, s) / A), from uniforms (..., n_uniform)."""
         mu, s = np.broadcast_arrays(np.asarray(mu, float), np.asarray(s, float))
         out = np.full(mu.shape, np.nan)
@@ -262,7 +268,7 @@ class LogUniformLinearAmplitude(UniformLinearAmplitude):
         return np.exp(l0 + t * (l1 - l0))
 
 
-def amplitude_marginal(prior):
+def amplitude_marginal(prior: _Prior1D) -> UniformLinearAmplitude:
     """The marginalisation strategy for an amplitude prior (on log10 A).
 
     Raises

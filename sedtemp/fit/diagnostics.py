@@ -13,6 +13,7 @@ rank normalisation, bulk and tail ESS; Geyer's initial monotone sequence).
 from __future__ import annotations
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.special import ndtri
 from scipy.stats import rankdata
 
@@ -41,7 +42,7 @@ def _autocov(x):
     return np.fft.irfft(f * np.conj(f), n=m, axis=1)[:, :n] / n
 
 
-def ess_basic(x):
+def ess_basic(x: ArrayLike) -> float:
     """ESS of chains (n_chains, n_draws) with Geyer's initial monotone sequence (no split, no ranks)."""
     x = np.asarray(x, float)
     m, n = x.shape
@@ -67,13 +68,13 @@ def ess_basic(x):
     return float(m * n / tau)
 
 
-def ess_bulk(x):
+def ess_bulk(x: ArrayLike) -> float:
     """Bulk ESS: ESS of the rank-normalised split chains, x of shape (n_chains, n_draws)."""
     s = _split(x)
     return ess_basic(_rank_normalise(s))
 
 
-def ess_tail(x):
+def ess_tail(x: ArrayLike) -> float:
     """Tail ESS: the smaller ESS of the indicators of the 5 % and 95 % quantiles (split chains)."""
     s = _split(x)
     q05, q95 = np.quantile(s, [0.05, 0.95])
@@ -89,12 +90,12 @@ def _rhat_basic(s):
     return float(np.sqrt(var_hat / w)) if w > 0 else float("nan")
 
 
-def split_rhat(x):
+def split_rhat(x: ArrayLike) -> float:
     """Split R-hat of the raw values (no rank normalisation), x (n_chains, n_draws): a cheap pre-check."""
     return _rhat_basic(_split(x))
 
 
-def ess_bulk_and_rhat(x):
+def ess_bulk_and_rhat(x: ArrayLike) -> tuple[float, float]:
     """(:func:`ess_bulk`, :func:`rhat`) of x (n_chains, n_draws), sharing the rank normalisation."""
     s = _split(x)
     z = _rank_normalise(s)
@@ -102,7 +103,7 @@ def ess_bulk_and_rhat(x):
     return ess_basic(z), max(_rhat_basic(z), _rhat_basic(_rank_normalise(folded)))
 
 
-def rhat(x):
+def rhat(x: ArrayLike) -> float:
     """Rank-normalised split R-hat: the larger of bulk and folded-tail R-hat, x (n_chains, n_draws).
 
     Examples

@@ -25,9 +25,12 @@ never worse in chi^2 than the optimiser's optimum.
 from __future__ import annotations
 
 import warnings
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from astropy.table import Table
+from numpy.typing import ArrayLike
 from scipy.interpolate import CubicSpline, RectBivariateSpline
 
 from .._numerics import TensorSpline
@@ -41,6 +44,13 @@ from ._data import resolve_prior
 from .amplitude import amplitude_marginal
 from .summary import QUANTILES
 from .zoom import refine_block
+
+if TYPE_CHECKING:
+    import astropy.units as u
+
+    from ..bands import BandSet
+    from ..models import SEDModel
+    from ..simulate import SeedLike
 
 __all__ = ["GridPosterior", "grid_posterior", "source_seeds"]
 
@@ -167,12 +177,12 @@ class GridPosterior:
         else:
             self.beta_edges, self._wb = np.array([np.nan, np.nan]), np.ones(1)
 
-    def theta_of(self, T, beta):
+    def theta_of(self, T: ArrayLike, beta: ArrayLike) -> np.ndarray:
         """Parameter array (n, n_params) at amplitude 10**0 for T and beta arrays of shape (n,)."""
         cols = {"T": T, "beta": beta, self.amp_name: np.zeros(np.shape(T))}
         return np.column_stack([cols[n] for n in self.names])
 
-    def node_log_prior(self, T, beta, wT, wb):
+    def node_log_prior(self, T: ArrayLike, beta: ArrayLike | None, wT: ArrayLike, wb: ArrayLike) -> np.ndarray:
         """Log prior mass of cells (T, beta) with widths wT (K) and wb, elementwise."""
         lp = self.prior["T"].logpdf(T) + np.log(wT)
         if self.has_beta:
@@ -195,7 +205,7 @@ class GridPosterior:
         self._tensor = None
         self._nodes = None
 
-    def nodes(self):
+    def nodes(self) -> Nodes:
         """The grid as a :class:`~sedtemp.fit._blocks.Nodes` shared by every source."""
         if self._nodes is None:
             lte = np.log(self.T_edges)
@@ -206,7 +216,7 @@ class GridPosterior:
                 affine=False)
         return self._nodes
 
-    def template_spline(self):
+    def template_spline(self) -> list[RectBivariateSpline] | CubicSpline:
         """Cubic splines of ln(band flux) over (ln T, beta) nodes, built on first use."""
         if self._spline is None:
             lg = np.log(np.maximum(self._g, 1e-300)).reshape(*self.shape, -1)
@@ -217,7 +227,7 @@ class GridPosterior:
                 self._spline = CubicSpline(x, lg[:, 0, :], axis=0)
         return self._spline
 
-    def templates_at(self, lnT, beta=None):
+    def templates_at(self, lnT: ArrayLike, beta: ArrayLike | None = None) -> np.ndarray:
         """Band fluxes at amplitude 10**0 at arbitrary points (any shape), (..., n_bands).
 
         Interpolated by the bicubic spline of ln(band flux) through the grid
@@ -236,7 +246,7 @@ class GridPosterior:
             self._tensor = TensorSpline(self.template_spline())
         return self._tensor
 
-    def templates_on(self, lnT, beta=None):
+    def templates_on(self, lnT: ArrayLike, beta: ArrayLike | None = None) -> np.ndarray:
         """Band fluxes (amplitude 10**0) on one tensor grid per row: (k, n) x (k, m) -> (k, n m, n_bands).
 
         The same spline as :meth:`templates_at` at the points
@@ -251,7 +261,8 @@ class GridPosterior:
         lg = self._tensor_spline().on_grids(x, y)
         return np.exp(lg.reshape(lg.shape[0], -1, lg.shape[-1]))
 
-    def zoomed(self, T_range, beta_range=None, *, n_nodes=25):
+    def zoomed(self, T_range: tuple[float, float], beta_range: tuple[float, float] | None = None, *,
+               n_nodes: int = 25) -> GridPosterior:
         """A finer grid over one window (shared by all sources), band fluxes from :meth:`templates_at`."""
         child = object.__new__(GridPosterior)
         child.__dict__.update(self.__dict__)
@@ -264,7 +275,7 @@ class GridPosterior:
         child._tabulate(self.templates_at(tt.ravel(), bb.ravel() if self.has_beta else None))
         return child
 
-    def column_names(self):
+    def column_names(self) -> list[str]:
         """Names of the summary columns :meth:`summarise` returns."""
         names = [f"T_{k}" for k in QUANTILES]
         if self.has_beta:
@@ -274,11 +285,12 @@ class GridPosterior:
         return [*names, "chi2_map", "n_bands_used", "dof", "chi2_reduced", "ppp"]
 
     @property
-    def shape(self):
+    def shape(self) -> tuple[int, int]:
         """(n_T, n_beta) grid shape."""
         return (self.T_nodes.size, self.beta_nodes.size)
 
-    def log_posterior(self, flux, err, limit_only, nodes=None):
+    def log_posterior(self, flux: np.ndarray, err: np.ndarray, limit_only: np.ndarray, nodes: Nodes | None = None
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Unnormalised log posterior mass per node, and the conditional amplitude.
 
         Parameters
@@ -327,8 +339,9 @@ class GridPosterior:
         const = -0.5 * np.sum(np.where(det, np.log(np.where(det, err, 1.0) ** 2) + _LOG_2PI, 0.0), axis=1)
         return logp + const[:, None], a_hat, sd, chi2
 
-    def summarise(self, flux, err, limit_only, *, n_draws=defaults.N_DRAWS, n_ppp=defaults.N_PPP, rng=None,
-                  keep_draws=False, refine=True):
+    def summarise(self, flux: np.ndarray, err: np.ndarray, limit_only: np.ndarray, *, n_draws: int = defaults.N_DRAWS,
+                  n_ppp: int = defaults.N_PPP, rng: SeedLike | Sequence[SeedLike] = None,
+                  keep_draws: bool = False, refine: bool = True) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
         """Posterior summaries for a block of sources (SI arrays, see :meth:`log_posterior`).
 
         Parameters
@@ -380,7 +393,7 @@ def _log_ndtr(z):
     return log_ndtr(z)
 
 
-def warn_flags(flags):
+def warn_flags(flags: Sequence[Sequence[str]]) -> None:
     """One GridWarning per kind of trouble in a block's flags."""
     n_edge = sum(any(f.endswith(("_prior_low", "_prior_high")) for f in fl) for fl in flags)
     if n_edge:
@@ -395,10 +408,14 @@ def warn_flags(flags):
             GridWarning, stacklevel=3)
 
 
-def grid_posterior(flux, flux_err, bands, *, model=None, prior=None, calibration=None,
-                   upper_limits=None, source_ids=None, T_nodes=None, beta_nodes=None,
-                   n_draws=defaults.N_DRAWS, n_ppp=defaults.N_PPP, chunk_size=defaults.CHUNK_SIZE,
-                   seed=None, grid=None):
+def grid_posterior(flux: u.Quantity | ArrayLike, flux_err: u.Quantity | ArrayLike, bands: BandSet, *,
+                   model: SEDModel | None = None, prior: Mapping[str, Any] | None = None,
+                   calibration: Calibration | Mapping[str, tuple[Sequence[str], float]] | None = None,
+                   upper_limits: Sequence[str] | ArrayLike | None = None, source_ids: Sequence[object] | None = None,
+                   T_nodes: ArrayLike | None = None, beta_nodes: ArrayLike | None = None,
+                   n_draws: int = defaults.N_DRAWS, n_ppp: int = defaults.N_PPP,
+                   chunk_size: int = defaults.CHUNK_SIZE, seed: int | None = None,
+                   grid: GridPosterior | None = None) -> Table:
     """Grid posteriors of T, beta and amplitude for many sources at once.
 
     Parameters

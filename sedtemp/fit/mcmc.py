@@ -6,9 +6,12 @@ The only module of sedtemp that imports emcee.
 from __future__ import annotations
 
 import warnings
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING, Any
 
 import emcee
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.optimize import minimize
 from scipy.special import log_ndtr
 from scipy.stats import qmc
@@ -37,6 +40,12 @@ from .grid import GridPosterior, _axis_nodes, _prior_sd
 from .result import FitResult
 from .summary import POOR_FIT_PPP, trust_flags
 
+if TYPE_CHECKING:
+    import astropy.units as u
+
+    from ..bands import BandSet
+    from ..models import ModifiedBlackbody, SEDModel
+
 __all__ = ["LogPosterior", "default_model", "fit_source"]
 
 #: The kept chain must be this many integrated autocorrelation times long, so
@@ -58,7 +67,7 @@ _GH_LOGW = np.log(_GH_W) + _GH_X**2
 _START_N_T, _START_N_BETA = 40, 24
 
 
-def default_model():
+def default_model() -> ModifiedBlackbody:
     """The model used when none is given: optically thin, amplitude as tau (no distance needed)."""
     import astropy.units as u
 
@@ -78,7 +87,7 @@ class LogPosterior:
         self.names = tuple(model.param_names)
         self.used = used
 
-    def model_band_fluxes(self, theta):
+    def model_band_fluxes(self, theta: ArrayLike) -> np.ndarray:
         sed = self.model.sed_si(self.bands.nu_grid_hz, theta)
         return self.bands.band_fluxes(sed)[:, self.used]
 
@@ -136,17 +145,19 @@ class MarginalLogPosterior:
             return A, np.log(np.sqrt(2.0) * sd)[:, None] + _GH_LOGW - np.log(A)
         return quadrature_nodes(mu, sd, a.a_lo, a.a_hi)
 
-    def full_theta(self, x, log_amp=None):
+    def full_theta(self, x: np.ndarray, log_amp: ArrayLike | None = None) -> np.ndarray:
         """(n, n_free) -> (n, n_params) with the amplitude column (0 unless given)."""
         cols = dict(zip(self.free, np.atleast_2d(x).T, strict=True))
         cols[self.amp_name] = np.zeros(len(x)) if log_amp is None else log_amp
         return np.column_stack([cols[n] for n in self.names])
 
-    def templates(self, x):
+    def templates(self, x: np.ndarray) -> np.ndarray:
         theta = self.full_theta(x)
         return self.bands.band_fluxes(self.model.template_si(self.bands.nu_grid_hz, theta))[:, self.used]
 
-    def node_log_likelihood(self, A, sums, g):
+    def node_log_likelihood(self, A: np.ndarray,
+                            sums: tuple[np.ndarray, np.ndarray, np.ndarray, list[tuple[np.ndarray, np.ndarray]]],
+                            g: np.ndarray) -> np.ndarray:
         """The likelihood's log at amplitudes A (n, q) of templates g (n, n_used), (n, q).
 
         Equal to ``likelihood(A[..., None] * g[:, None])`` (to rounding, tested)
@@ -316,10 +327,15 @@ def _meets(ess, rh, tau, n_kept, ess_target, key_idx):
                 and n_kept > _TAU_LENGTH * np.max(tau))
 
 
-def fit_source(flux, flux_err, bands, *, model=None, prior=None, calibration=None,
-               upper_limits=None, seed=None, n_walkers=defaults.N_WALKERS, ess_target=defaults.ESS_TARGET,
-               max_steps=defaults.MAX_STEPS, check_every=defaults.CHECK_EVERY, start="auto", start_grid=None,
-               source_id=None, marginalise=True):
+def fit_source(flux: u.Quantity | ArrayLike, flux_err: u.Quantity | ArrayLike, bands: BandSet, *,
+               model: SEDModel | None = None, prior: Mapping[str, Any] | None = None,
+               calibration: Calibration | Mapping[str, tuple[Sequence[str], float]] | None = None,
+               upper_limits: Sequence[str] | ArrayLike | None = None,
+               seed: int | np.random.SeedSequence | None = None, n_walkers: int = defaults.N_WALKERS,
+               ess_target: float = defaults.ESS_TARGET, max_steps: int = defaults.MAX_STEPS,
+               check_every: int = defaults.CHECK_EVERY, start: str = "auto",
+               start_grid: GridPosterior | None = None, source_id: object = None,
+               marginalise: bool = True) -> FitResult:
     """MCMC posterior of one source's SED parameters.
 
     Parameters

@@ -3,11 +3,15 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 from astropy.table import Table
 
 from .summary import QUANTILES
+
+if TYPE_CHECKING:
+    from arviz import InferenceData
 
 __all__ = ["FitResult"]
 
@@ -92,7 +96,7 @@ class FitResult:
         c = self.chain[int(discard)::int(thin)]
         return c.reshape(-1, c.shape[-1]) if flat else c
 
-    def to_arviz(self):
+    def to_arviz(self) -> InferenceData:
         """The chain as an ``arviz.InferenceData`` (walkers as chains, burn-in discarded).
 
         Raises

@@ -6,7 +6,10 @@ ones the results table, the catalogue pipeline and the plots rely on.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
+from numpy.typing import ArrayLike
 
 __all__ = [
     "EDGE_FRACTION",
@@ -41,7 +44,7 @@ def quantile_columns(name: str) -> list[str]:
     return [f"{name}_{k}" for k in QUANTILES]
 
 
-def weighted_quantiles(x, w, probs):
+def weighted_quantiles(x: np.ndarray, w: np.ndarray, probs: Sequence[float]) -> np.ndarray:
     """Quantiles of weighted samples along the last axis (w >= 0, any normalisation)."""
     order = np.argsort(x, axis=-1)
     xs = np.take_along_axis(x, order, axis=-1)
@@ -60,7 +63,8 @@ def weighted_quantiles(x, w, probs):
     return out
 
 
-def trust_masks(name, x, w, low, high, prior_sd):
+def trust_masks(name: str, x: ArrayLike, w: ArrayLike, low: float, high: float,
+                prior_sd: float) -> dict[str, np.ndarray]:
     """Trust flags of one parameter from weighted draws along the last axis, as boolean masks.
 
     Returns
@@ -84,6 +88,6 @@ def trust_masks(name, x, w, low, high, prior_sd):
     return out
 
 
-def trust_flags(name, x, w, low, high, prior_sd):
+def trust_flags(name: str, x: ArrayLike, w: ArrayLike, low: float, high: float, prior_sd: float) -> list[str]:
     """Flags for one parameter from weighted draws (1-D): edge pile-up, prior domination."""
     return [k for k, v in trust_masks(name, x, w, low, high, prior_sd).items() if v]

@@ -24,9 +24,14 @@ flux) through the coarse grid (~1e-5 relative to the model).
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING, Any
+
 import numpy as np
 
 from ._blocks import Nodes, _RowRandom, conditional, summarise_nodes
+
+if TYPE_CHECKING:
+    from ._blocks import BlockRandom, BlockSummary
 
 __all__: list[str] = []
 
@@ -62,7 +67,9 @@ def _data(grid, flux, err, limit_only):  # noqa: ARG001 - kept for a uniform cal
     return np.where(det, flux, 0.0), iv
 
 
-def profile_chi2(grid, F, iv, pts):
+# ``grid: Any`` below is a GridPosterior: sedtemp.fit.grid imports this module, so importing it
+# here (even for type checking) would make an import cycle.
+def profile_chi2(grid: Any, F: np.ndarray, iv: np.ndarray, pts: np.ndarray) -> np.ndarray:
     """Amplitude-profiled chi^2 (calibration included) at points (k, m, d) of (ln T[, beta]) -> (k, m)."""
     g = grid.templates_at(pts[..., 0], pts[..., 1] if grid.has_beta else None)
     _, _, chi2, _ = conditional(F, iv, g, grid._masks, grid._d2)
@@ -111,7 +118,8 @@ def _newton(c, h):
     return step, pd, sd, rho
 
 
-def optimise(grid, F, iv, y0, h0):
+def optimise(grid: Any, F: np.ndarray, iv: np.ndarray, y0: np.ndarray, h0: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Vectorised local minimum of the profiled chi^2 from y0 (k, d): (y, chi2, sd, rho).
 
     ``h0`` (k, d) is the initial stencil spacing (the coarse cell); ``sd``
@@ -176,7 +184,7 @@ def _n_nodes_one(rho):
     return int(next(n for n in _NODE_LEVELS if n >= min(need, _NODE_LEVELS[-1])))
 
 
-def window_nodes(grid, centre, half, n=_ZOOM_NODES):
+def window_nodes(grid: Any, centre: np.ndarray, half: np.ndarray | float, n: int = _ZOOM_NODES) -> Nodes:
     """Uniform per-source windows (k sources) around ``centre`` (k, d) of half-width ``half``."""
     lo, hi = _bounds(grid)
     k = centre.shape[0]
@@ -257,7 +265,8 @@ def _windows(grid, F_all, err, limit_only, centre, half, n):
     return nodes, edge, evaluated  # pragma: no cover - loop always returns
 
 
-def refine_block(grid, out, rows, flux, err, limit_only, rng, n, n_ppp):
+def refine_block(grid: Any, out: BlockSummary, rows: np.ndarray, flux: np.ndarray, err: np.ndarray,
+                 limit_only: np.ndarray, rng: BlockRandom, n: int, n_ppp: int) -> None:
     """Re-evaluate the sources ``rows`` of a block summary ``out`` on zoomed windows, in place."""
     f, e, lim = flux[rows], err[rows], limit_only[rows]
     F, iv = _data(grid, f, e, lim)
