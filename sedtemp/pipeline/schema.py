@@ -21,7 +21,9 @@ comparison's T_eq posterior).
 from __future__ import annotations
 
 import functools
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import astropy.units as u
 import numpy as np
@@ -197,7 +199,10 @@ def _values(name, vals):
     return np.array([NONE_TEXT if v is None or str(v) == "" else str(v) for v in vals], dtype=str)
 
 
-def assemble(mapped, parts, status, reason, *, draws=None, n_keep=0, workflow=None) -> Table:  # noqa: ARG001 - kept for a uniform call signature
+def assemble(mapped: Any, parts: Sequence[Sequence[Mapping[str, Any]]], status: Sequence[str],
+             reason: Sequence[str], *, draws: Sequence[Mapping[str, Any] | None] | None = None, n_keep: int = 0,
+             workflow: Any = None) -> Table:  # noqa: ARG001 - kept for a uniform call signature
+    # mapped: MappedCatalog, workflow: Workflow (Any: the catalogue and config modules import this one)
     """Per-stage row dicts -> one Table: id first, schema columns in order, units and metadata set.
 
     Parameters
@@ -252,7 +257,7 @@ def assemble(mapped, parts, status, reason, *, draws=None, n_keep=0, workflow=No
     return describe(tab)  # a no-op on the columns built above; the kept ones the schema knows
 
 
-def order(names) -> list:
+def order(names: Iterable[str]) -> list[str]:
     """Schema column names sorted by group, stable within a group."""
     return sorted(names, key=lambda c: spec(c).group)
 

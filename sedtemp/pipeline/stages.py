@@ -26,7 +26,9 @@ from __future__ import annotations
 import logging
 import time
 import warnings
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
 
 import astropy.units as u
 import numpy as np
@@ -37,6 +39,13 @@ from ..seeds import source_seed
 from .catalog import MappedCatalog
 from .config import Workflow
 from .schema import STATUS_FAILED, STATUS_OK, STATUS_SKIPPED, assemble
+
+if TYPE_CHECKING:
+    from astropy.table import Table
+
+    from ..fit import FitResult, GridPosterior
+    from ..models import SEDModel
+    from ..radiation import RadiationField
 
 __all__ = [
     "FitOutput",
@@ -74,19 +83,19 @@ def source_streams(wf: Workflow, key: str) -> tuple[np.random.SeedSequence, np.r
     return a, b
 
 
-def source_field(mapped: MappedCatalog, i: int):
+def source_field(mapped: MappedCatalog, i: int) -> RadiationField:
     """The radiation field of source ``i`` (:func:`sedtemp.fields.build_field`)."""
     return build_field(mapped.field_arguments(i), A_V=float(mapped.A_V[i]))
 
 
-def model_for(wf: Workflow, redshift: float, distance_m):
+def model_for(wf: Workflow, redshift: float, distance_m: float | None) -> SEDModel:
     """The workflow's SED model at this redshift and distance (m; None when the amplitude is no mass)."""
     dist = None if distance_m is None else distance_m * u.m
     return wf.build_model(distance=dist, redshift=redshift) if wf.model["amplitude"] == "mass" \
         else wf.build_model(redshift=redshift)
 
 
-def grid_for(wf: Workflow, redshift: float, distance_m, digest: str | None = None):
+def grid_for(wf: Workflow, redshift: float, distance_m: float | None, digest: str | None = None) -> GridPosterior:
     """The cached :class:`GridPosterior` of the workflow at this redshift and grid distance (m)."""
     from ..fit import GridPosterior
 
@@ -104,7 +113,7 @@ def grid_for(wf: Workflow, redshift: float, distance_m, digest: str | None = Non
     return _GRIDS[key]
 
 
-def flux_scaling(wf: Workflow, mapped: MappedCatalog, i: int):
+def flux_scaling(wf: Workflow, mapped: MappedCatalog, i: int) -> tuple[float | None, float]:
     """(grid distance in m or None, flux factor) for source i (see _D_REF_M)."""
     if wf.model["amplitude"] != "mass" or mapped.distance_m is None:
         return None, 1.0
@@ -151,7 +160,8 @@ def _grid_block(wf, mapped, idx, out, digest):
         out.draws[i] = {k: np.asarray(v[j])[: wf.fit["n_draws"]] for k, v in extra["draws"].items()}
 
 
-def mcmc_result(wf: Workflow, mapped: MappedCatalog, i: int, seq, *, rescaled: bool = True):
+def mcmc_result(wf: Workflow, mapped: MappedCatalog, i: int, seq: np.random.SeedSequence, *,
+                rescaled: bool = True) -> tuple[FitResult, SEDModel]:
     """emcee fit of source i with the workflow's model, prior and calibration: (FitResult, model).
 
     ``rescaled``: with a per-source distance the batch fits fluxes rescaled to
@@ -233,7 +243,7 @@ def _default_beta(wf):
     return float(wf.model["beta"]) if wf.model["beta"] is not None else float(wf.opacity().beta)
 
 
-def prediction_beta(wf: Workflow, fit_rows) -> np.ndarray:
+def prediction_beta(wf: Workflow, fit_rows: Sequence[Mapping[str, Any] | None]) -> np.ndarray:
     """beta of each source's prediction: the fitted median, else [model] beta, else the opacity's."""
     default = _default_beta(wf)
     vals = [r.get("beta_median", np.nan) if r else np.nan for r in fit_rows]
@@ -261,7 +271,7 @@ def _fields_of(mapped, idx, failures, stage, cache=None):
 
 
 def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active: np.ndarray, *,
-                  fields: dict | None = None):
+                  fields: dict | None = None) -> tuple[dict[str, np.ndarray], dict[int, str]]:
     """T_eq (K) of each active source's field at its ``beta``: one chunk call.
 
     Returns
@@ -300,7 +310,7 @@ def predict_stage(wf: Workflow, mapped: MappedCatalog, beta: np.ndarray, active:
     return cols, failures
 
 
-def draws_arrays(draws: list, n_draws: int, names=("T", "beta", "log10_mass")) -> dict:
+def draws_arrays(draws: list, n_draws: int, names: Sequence[str] = ("T", "beta", "log10_mass")) -> dict:
     """Per-source draw dicts -> arrays (n, n_draws) per parameter, NaN-padded (None: absent)."""
     n = len(draws)
     out = {}
@@ -349,8 +359,10 @@ def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity, k
                          seeds=seeds, run_seed=wf.run["seed"], keep_draws=keep_draws)
 
 
-def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws, beta_draws, *, mass_draws=None,
-                  fit_flags=None, active=None, fields=None):
+def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws: np.ndarray, beta_draws: np.ndarray | None, *,
+                  mass_draws: np.ndarray | None = None, fit_flags: Sequence[str] | None = None,
+                  active: np.ndarray | None = None, fields: dict | None = None
+                  ) -> tuple[dict[str, np.ndarray], dict[int, str]]:
     """The comparison of every active source's draws, one chunk call per draw count.
 
     Parameters
@@ -455,8 +467,8 @@ def _apply(failures, status, reason):
 STAGE_SECONDS: dict = {"fit": 0.0, "predict": 0.0, "compare": 0.0, "assemble": 0.0}
 
 
-def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages=("fit", "predict", "compare"),
-                  n_keep=None):
+def process_chunk(wf: Workflow, mapped: MappedCatalog, *, stages: Sequence[str] = ("fit", "predict", "compare"),
+                  n_keep: int | None = None) -> Table:
     """Run the stages on every source of a (sub-)catalogue; one row per source (a Table).
 
     This is the task a worker runs. It never raises for one bad source: that
