@@ -284,7 +284,12 @@ def _cmd_run(args) -> int:
     wf, tab, map_catalog = _load(args.workflow)
     tab = _subset(tab, wf, ids=args.ids, limit=args.limit)
     out = args.output if args.output is not None else wf.output_dir
-    _run_workflow(args, wf, tab, map_catalog, Path(out), restart=args.restart, return_table=False)
+    from .pipeline import check_optional_packages
+
+    check_optional_packages(wf)  # a missing extra fails here, before any fitting
+    mapped = map_catalog(tab, wf)
+    del tab  # the mapped catalogue holds what the run needs: the table as read is not kept
+    _run_workflow(args, wf, mapped, lambda m, _: m, Path(out), restart=args.restart, return_table=False)
     return 0
 
 
