@@ -232,12 +232,16 @@ def _cmd_check(args) -> int:
     return 0
 
 
-def _run_workflow(args, wf, tab, map_catalog, out, *, restart=False):
+def _run_workflow(args, wf, tab, map_catalog, out, *, restart=False, return_table=True):
+    """Run the workflow into ``out`` and print its summary; the results table, or with
+    ``return_table=False`` only their tally (the table is not held: memory stays flat in
+    the catalogue's size)."""
     from .pipeline import check_optional_packages, run_batch
 
     check_optional_packages(wf)  # a missing extra fails here, before any fitting
     mapped = map_catalog(tab, wf)
-    res = run_batch(mapped, wf, output_dir=out, progress=not args.quiet, restart=restart)
+    res = run_batch(mapped, wf, output_dir=out, progress=not args.quiet, restart=restart,
+                    return_table=return_table)
     _summary(args, res, out, wf)
     return res
 
@@ -245,9 +249,9 @@ def _run_workflow(args, wf, tab, map_catalog, out, *, restart=False):
 def _summary(args, res, out, wf):
     import json
 
-    from .pipeline import OUTPUT_FORMATS, run_summary, summary_lines
+    from .pipeline import OUTPUT_FORMATS, RunTally, run_summary, summary_lines
 
-    for line in summary_lines(run_summary(res), len(res)):
+    for line in summary_lines(run_summary(res), res.n if isinstance(res, RunTally) else len(res)):
         _say(args, line)
     name = wf.output["name"]
     _say(args, f"results: {out / (name + OUTPUT_FORMATS[wf.output['format']][1])}")
@@ -280,7 +284,12 @@ def _cmd_run(args) -> int:
     wf, tab, map_catalog = _load(args.workflow)
     tab = _subset(tab, wf, ids=args.ids, limit=args.limit)
     out = args.output if args.output is not None else wf.output_dir
-    _run_workflow(args, wf, tab, map_catalog, Path(out), restart=args.restart)
+    from .pipeline import check_optional_packages
+
+    check_optional_packages(wf)  # a missing extra fails here, before any fitting
+    mapped = map_catalog(tab, wf)
+    del tab  # the mapped catalogue holds what the run needs: the table as read is not kept
+    _run_workflow(args, wf, mapped, lambda m, _: m, Path(out), restart=args.restart, return_table=False)
     return 0
 
 

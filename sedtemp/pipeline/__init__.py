@@ -35,7 +35,7 @@ from .config import (
 )
 from .executors import EXECUTORS, InlineExecutor, open_executor
 from .figures import SOURCES_DIR, catalogue_plots, select_plot_sources
-from .report import run_summary, summary_lines, write_report
+from .report import RunTally, run_summary, summary_lines, write_report
 from .schema import RENAMES, STATUS_FAILED, STATUS_OK, STATUS_SKIPPED
 from .sources import (
     grid_result,
@@ -83,6 +83,7 @@ __all__ = [
     "run",
     "run_batch",
     "run_metadata",
+    "RunTally",
     "run_summary",
     "select_plot_sources",
     "source_field",

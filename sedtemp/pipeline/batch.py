@@ -13,7 +13,10 @@ its checkpoint and to a temporary spill file, and the results file (and the
 draws file, ``[output] keep_draws``) is written from them one chunk at a time
 in row order (:func:`_write_streamed`), equal byte for byte to what writing
 the whole table at once gives (HDF5 draws: equal values). The table the run
-returns is filled chunk by chunk (one copy, no vstack). After the results:
+returns is filled chunk by chunk (one copy, no vstack); with
+``return_table=False`` (``sedtemp run``) there is none: the report's counts
+are gathered as the chunks are written (:class:`~sedtemp.pipeline.report.RunTally`)
+and only the columns the stages after it need are kept. After the results:
 the catalogue plots and per-source plots (:mod:`sedtemp.pipeline.figures`),
 and the run report (:mod:`sedtemp.pipeline.report`).
 """
@@ -43,7 +46,7 @@ from .config import OUTPUT_FORMATS, Workflow
 from .executors import EXECUTORS, InlineExecutor, open_executor
 from .figures import SOURCES_DIR, catalogue_plots, select_plot_sources, source_plots
 from .population_stage import population_stage
-from .report import Progress, write_report
+from .report import Progress, RunTally, write_report
 from .schema import (
     CLASS_COLUMN,
     DRAW_PREFIX,
@@ -495,11 +498,14 @@ def _draws_fits_table(tab: Table, names, width: int, meta: dict | None) -> Table
     return draws
 
 
-def _write_streamed(finished: _Finished, wf: Workflow, mapped: MappedCatalog, out: Path) -> Table:
+def _write_streamed(finished: _Finished, wf: Workflow, mapped: MappedCatalog, out: Path,
+                    keep: list[str] | None = None, tally: RunTally | None = None) -> Table | None:
     """Write the results file (and the draws file) from the finished chunks, one at a time.
 
     The files equal those :func:`_write_outputs` writes of :func:`_finalise`'s
-    table; returns that table too (filled chunk by chunk: one copy in memory).
+    table. Returns that table too (filled chunk by chunk: one copy in memory),
+    or with ``keep`` only those of its columns (in its order; none: None).
+    ``tally`` gets every chunk as it is written.
     """
     fmt, name = wf.output["format"], wf.output["name"]
     meta = run_metadata(wf, mapped)
@@ -535,11 +541,15 @@ def _write_streamed(finished: _Finished, wf: Workflow, mapped: MappedCatalog, ou
                 dsink.add(_draws_fits_table(tab, draws, width, dmeta if start == 0 else None))
             elif dsink is not None:
                 dsink.add(tab)
-            if result is None:
+            if tally is not None:
+                tally.add(tab)
+            if first is None:
                 first = tab
-                result = tab[np.zeros(n, dtype=int)]
-            for c in tab.colnames:
-                result[c][start:start + len(tab)] = tab[c]
+                cols = tab.colnames if keep is None else [c for c in tab.colnames if c in set(keep)]
+                result = tab[cols][np.zeros(n, dtype=int)] if cols else None
+            if result is not None:
+                for c in result.colnames:
+                    result[c][start:start + len(tab)] = tab[c]
         sink.close()
         if dsink is not None:
             dsink.close()
@@ -567,7 +577,7 @@ def _fit_all(get_executor, wf, mapped, todo, on_done, bar, n_keep):
 
 
 def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=None,
-              progress=False, restart=False, keep_draws=False) -> Table:
+              progress=False, restart=False, keep_draws=False, return_table=True) -> Table | RunTally:
     """Run fit -> predict -> compare over a mapped catalogue, in chunks, on an executor.
 
     Parameters
@@ -586,11 +596,18 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
     keep_draws : bool, keyword-only
         Keep ``[output] n_keep`` draws per source in ``draws_*`` columns of
         the returned table even if ``[output] keep_draws`` is off.
+    return_table : bool, keyword-only
+        False (with ``output_dir``): do not hold the results table; the files
+        are written alike and the run returns the :class:`~sedtemp.pipeline.report.RunTally`
+        of its report, gathered as the results are written. Held in memory
+        then: only the columns the catalogue plots, the per-source plots and
+        the population stage use, when the workflow makes them.
 
     Returns
     -------
-    Table
-        The results, one row per source in catalogue order.
+    Table or RunTally
+        The results, one row per source in catalogue order; their tally
+        with ``return_table=False``.
 
     Raises
     ------
@@ -600,15 +617,32 @@ def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=
     ImportError
         Before any fitting: a needed optional package is missing.
     """
+    if not return_table and output_dir is None:
+        raise ValueError("run_batch: return_table=False needs an output_dir (the results go to files there)")
     check_optional_packages(wf) if output_dir is not None else EXECUTORS[wf.run["executor"]].check()
     if output_dir is None:
         return _run(mapped, wf, executor, None, progress, False, keep_draws)
     out = Path(output_dir)
     with OutputLock(out) as lock:
-        return _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=lock)
+        return _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=lock,
+                    return_table=return_table)
 
 
-def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
+def _needed_columns(wf: Workflow, names: list[str]) -> list[str]:
+    """The results columns the stages after the results files use (of ``names``, in order)."""
+    if wf.population.get("enabled"):
+        return list(names)  # the population stage reads the draws and what it likes of the rest
+    need: set[str] = set()
+    if wf.output["plots"]:  # the catalogue plots: every column but the draws
+        need.update(c for c in names if not c.startswith(DRAW_PREFIX))
+    if wf.output["source_plots"] != "none":  # choosing the sources, and their T_eq band
+        need.update(names[:1])
+        need.update(("status", CLASS_COLUMN, "flag", FIT_FLAGS_COLUMN, "flags", "T_eq_p16", "T_eq_p84",
+                     "T_eq_point", "T_eq"))
+    return [c for c in names if c in need]
+
+
+def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None, return_table=True):
     t0 = time.perf_counter()
     tabs: list[Table] = []  # in memory only without an output folder
     state: RunState | None = None
@@ -649,7 +683,11 @@ def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
             if out is None or finished is None:
                 return _finalise(tabs, wf, mapped) if tabs else _empty(mapped, wf)
             seconds = time.perf_counter() - t0
-            if finished.items:
+            tally = None if return_table else RunTally(mapped.ids)
+            if finished.items and tally is not None:
+                kept = _write_streamed(finished, wf, mapped, out, _needed_columns(wf, list(finished.layout)), tally)
+                result = Table() if kept is None else kept
+            elif finished.items:
                 result = _write_streamed(finished, wf, mapped, out)
             else:
                 result = _empty(mapped, wf)
@@ -661,9 +699,12 @@ def _run(mapped, wf, executor, out, progress, restart, keep_draws, lock=None):
             finished.remove()
     events = {"damaged": state.damaged, "removed_temporaries": state.removed_temporaries,
               "stale_lock": None if lock is None or lock.stale is None else lock.stale}
-    write_report(result, out / f"{wf.output['name']}-report", seconds=seconds, n_resumed=n_resumed,
+    if tally is None or not tally.n:
+        tally = RunTally(mapped.ids)
+        tally.add(result)
+    write_report(tally, out / f"{wf.output['name']}-report", seconds=seconds, n_resumed=n_resumed,
                  plots=plots, checkpoints=events, population=population)
-    return result
+    return result if return_table else tally
 
 
 def _empty(mapped, wf):
@@ -675,7 +716,7 @@ def _empty(mapped, wf):
 def _plots(get_executor, wf, mapped, result, out, progress) -> dict:
     t0 = time.perf_counter()
     plots = {}
-    if wf.output["plots"] and len(result):
+    if wf.output["plots"] and len(mapped):
         made, failed = catalogue_plots(result, out)
         plots["catalogue"] = {"made": [p.name for p in made], "failed": failed}
 

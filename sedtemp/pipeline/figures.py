@@ -93,11 +93,11 @@ def select_plot_sources(results: Table, choice: str) -> np.ndarray:
     """
     if choice not in SOURCE_PLOT_CHOICES:
         raise ConfigError(f"[output] source_plots must be one of {list(SOURCE_PLOT_CHOICES)}, got {choice!r}")
+    if choice == "none":  # no column needed (a run that holds none of its results)
+        return np.flatnonzero(np.zeros(len(results), dtype=bool))
     ok = np.asarray(results["status"]) == STATUS_OK
     cls, fl = _column(results, CLASS_COLUMN, "flag"), _column(results, FIT_FLAGS_COLUMN, "flags")
-    if choice == "none":
-        ok[:] = False
-    elif choice == "flagged" and cls is not None:
+    if choice == "flagged" and cls is not None:
         flag = np.asarray(results[cls], dtype=str)
         ok &= (flag != "") & (flag != NONE_TEXT) & (flag != "consistent")
     elif choice == "flagged" and fl is not None:

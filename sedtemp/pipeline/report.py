@@ -38,7 +38,7 @@ from .schema import (
 )
 
 __all__ = [
-    "extrapolation_caution","LOG_EVERY_S", "Progress", "run_summary", "summary_lines", "write_report"]
+    "extrapolation_caution", "LOG_EVERY_S", "Progress", "RunTally", "run_summary", "summary_lines", "write_report"]
 
 #: Seconds between plain progress lines when stderr is not a terminal.
 LOG_EVERY_S = 10.0
@@ -123,8 +123,113 @@ def _range(tab, name, rows):
     return None if not v.size else (float(v.min()), float(v.max()))
 
 
-def run_summary(tab: Table) -> dict:
+def _merge(a, b):
+    """The (min, max) range of two ranges (either may be None)."""
+    if a is None or b is None:
+        return a if b is None else b
+    return (min(a[0], b[0]), max(a[1], b[1]))
+
+
+class RunTally:
+    """What the run summary and the report need of the results, gathered a chunk at a time.
+
+    :meth:`add` takes the results rows in row order, one chunk (a Table) at
+    a time; :meth:`summary` is then what :func:`run_summary` gives of the
+    whole table, and :func:`write_report` takes the tally in place of the
+    table. Kept per source: 9 bytes (the p_warmer ranking of the "check these
+    next" list) when the results have a comparison; everything else is
+    counts, ranges, and the failed and skipped sources with their reasons.
+
+    Parameters
+    ----------
+    ids : sequence, optional
+        The source ids by row (the results' first column), to name ranked
+        sources without keeping their ids; default: kept from the chunks.
+    """
+
+    def __init__(self, ids=None) -> None:
+        self.ids = ids
+        self.n = 0
+        self.workflow_sha256: str | None = None
+        self.status: Counter = Counter()
+        self.quality = {label: 0 for _, label in _QUALITY}
+        self.classes: dict[str, dict] = {}
+        self.failed: list[tuple[str, str]] = []
+        self.skipped: list[tuple[str, str]] = []
+        self._poor: list[str] = []
+        self._sure: list[np.ndarray] = []
+        self._cand: list[np.ndarray] = []
+        self._cand_ids: dict[int, str] = {}
+        self._extra: tuple[int, float] | None = None
+
+    def add(self, tab: Table) -> None:
+        """Count the next rows of the results (a chunk, in row order)."""
+        start = self.n
+        if self.workflow_sha256 is None:
+            self.workflow_sha256 = str(tab.meta.get("workflow_sha256", ""))
+        self.n += len(tab)
+        has_status = "status" in tab.colnames
+        if has_status:
+            self.status.update(str(s) for s in tab["status"])
+        ok = np.asarray(tab["status"]) == STATUS_OK if has_status else np.ones(len(tab), bool)
+        flags = _flag_sets(tab)
+        for flag, label in _QUALITY:
+            self.quality[label] += int(sum(1 for f, o in zip(flags, ok, strict=True) if o and flag in f))
+        if CLASS_COLUMN in tab.colnames:
+            cls = np.asarray(tab[CLASS_COLUMN], dtype=str)
+            for name in sorted(set(cls[ok])):
+                rows = ok & (cls == name)
+                c = self.classes.setdefault(name, {"n": 0, "T": None, "beta": None, "ratio": None})
+                c["n"] += int(rows.sum())
+                for key, col in (("T", "T_median"), ("beta", "beta_median"), ("ratio", "ratio_median")):
+                    c[key] = _merge(c[key], _range(tab, col, rows))
+        if len(tab.colnames) and len(tab):
+            first = tab[tab.colnames[0]]
+            if has_status:
+                st = np.asarray(tab["status"])
+                for out, which in ((self.failed, STATUS_FAILED), (self.skipped, STATUS_SKIPPED)):
+                    out.extend((str(first[i]), str(tab["reason"][i])) for i in np.flatnonzero(st == which))
+            if len(set(self._poor)) < _NEXT:  # the first ones in row order are all the list can show
+                self._poor += [str(first[i]) for i in range(len(tab)) if ok[i] and "poor_fit" in flags[i]]
+            if CLASS_COLUMN in tab.colnames and "p_warmer" in tab.colnames:
+                cand = ok & np.isin(np.asarray(tab[CLASS_COLUMN], dtype=str), ("extra_heating", "shielded"))
+                self._sure.append(np.nan_to_num(np.abs(np.asarray(tab["p_warmer"], float) - 0.5)))
+                self._cand.append(cand)
+                if self.ids is None:
+                    self._cand_ids.update((start + int(i), str(first[i])) for i in np.flatnonzero(cand))
+        if "opacity_extrapolated_fraction" in tab.colnames:
+            f = np.asarray(tab["opacity_extrapolated_fraction"], float)[ok]
+            f = f[np.isfinite(f)]
+            if f.size:
+                n_over, largest = int(np.sum(f > EXTRAPOLATION_WARN_FRACTION)), float(f.max())
+                self._extra = (n_over, largest) if self._extra is None else \
+                    (self._extra[0] + n_over, max(self._extra[1], largest))
+
+    def _id(self, i: int) -> str:
+        return self._cand_ids[i] if self.ids is None else str(self.ids[i])
+
+    def summary(self) -> dict:
+        """What :func:`run_summary` gives of the rows added so far."""
+        nxt = [k for k, _ in self.failed] + self._poor
+        if self._sure:
+            sure, cand = np.concatenate(self._sure), np.concatenate(self._cand)
+            ranked = np.argsort(-sure)  # the whole ranking, as of the whole table (ties alike)
+            for i in ranked[cand[ranked]]:
+                if len(dict.fromkeys(nxt)) >= _NEXT:
+                    break
+                nxt.append(self._id(int(i)))
+        classes = {name: dict(self.classes[name]) for name in sorted(self.classes)}
+        return {"status": dict(self.status), "fit_quality": dict(self.quality), "classes": classes,
+                "check_next": list(dict.fromkeys(nxt))[:_NEXT], "opacity_extrapolated": self._extra}
+
+
+def run_summary(tab: Table | RunTally) -> dict:
     """Status and class counts, fit quality, per-class ranges and the sources to check next.
+
+    Parameters
+    ----------
+    tab : Table or RunTally
+        The results, or their tally (:class:`RunTally`).
 
     Returns
     -------
@@ -134,39 +239,15 @@ def run_summary(tab: Table) -> dict:
         ``check_next`` (ids: failed, poor fits, extra_heating/shielded with
         the highest p_warmer distance from 0.5, at most 10).
     """
-    status = Counter(str(s) for s in tab["status"]) if "status" in tab.colnames else Counter()
-    ok = np.asarray(tab["status"]) == STATUS_OK if "status" in tab.colnames else np.ones(len(tab), bool)
-    flags = _flag_sets(tab)
-    quality = {label: int(sum(1 for f, o in zip(flags, ok, strict=True) if o and flag in f)) for flag, label in _QUALITY}
-    classes = {}
-    if CLASS_COLUMN in tab.colnames:
-        cls = np.asarray(tab[CLASS_COLUMN], dtype=str)
-        for name in sorted(set(cls[ok])):
-            rows = ok & (cls == name)
-            classes[name] = {"n": int(rows.sum()), "T": _range(tab, "T_median", rows),
-                             "beta": _range(tab, "beta_median", rows), "ratio": _range(tab, "ratio_median", rows)}
-    ids = [str(v) for v in tab[tab.colnames[0]]] if len(tab.colnames) else []
-    nxt = [ids[i] for i in range(len(tab)) if not ok[i] and str(tab["status"][i]) == STATUS_FAILED]
-    nxt += [ids[i] for i in range(len(tab)) if ok[i] and "poor_fit" in flags[i]]
-    if CLASS_COLUMN in tab.colnames and "p_warmer" in tab.colnames:
-        cls = np.asarray(tab[CLASS_COLUMN], dtype=str)
-        sure = np.abs(np.asarray(tab["p_warmer"], float) - 0.5)
-        cand = [i for i in np.argsort(-np.nan_to_num(sure)) if ok[i] and cls[i] in ("extra_heating", "shielded")]
-        nxt += [ids[i] for i in cand]
-    return {"status": dict(status), "fit_quality": quality, "classes": classes,
-            "check_next": list(dict.fromkeys(nxt))[:_NEXT],
-            "opacity_extrapolated": _extrapolated(tab, ok)}
+    return _tally(tab).summary()
 
 
-def _extrapolated(tab, ok):
-    """(count above the warning fraction, largest fraction) of opacity_extrapolated_fraction, or None."""
-    if "opacity_extrapolated_fraction" not in tab.colnames:
-        return None
-    f = np.asarray(tab["opacity_extrapolated_fraction"], float)[ok]
-    f = f[np.isfinite(f)]
-    if f.size == 0:
-        return None
-    return int(np.sum(f > EXTRAPOLATION_WARN_FRACTION)), float(f.max())
+def _tally(tab: Table | RunTally) -> RunTally:
+    if isinstance(tab, RunTally):
+        return tab
+    tally = RunTally()
+    tally.add(tab)
+    return tally
 
 
 def extrapolation_caution(n_over: int, largest: float, n: int) -> str | None:
@@ -226,14 +307,14 @@ def _plot_lines(plots: dict) -> list[str]:
     return lines
 
 
-def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int, plots: dict | None = None,
+def write_report(tab: Table | RunTally, path: Path, *, seconds: float, n_resumed: int, plots: dict | None = None,
                  checkpoints: dict | None = None, population: dict | None = None) -> dict:
     """The run report: summary, failures with reasons, timing, plots, checkpoint events.
 
     Parameters
     ----------
-    tab : Table
-        The results.
+    tab : Table or RunTally
+        The results, or their tally (:class:`RunTally`, gathered chunk by chunk).
     path : Path
         File stem: ``<path>.txt`` and ``<path>.json`` are written.
     seconds : float, keyword-only
@@ -253,18 +334,18 @@ def write_report(tab: Table, path: Path, *, seconds: float, n_resumed: int, plot
         The report content (as in the JSON file).
     """
     path = Path(path)
-    summary = run_summary(tab)
-    failed = [(str(r[0]), str(r["reason"])) for r in tab if r["status"] == STATUS_FAILED]
-    skipped = [(str(r[0]), str(r["reason"])) for r in tab if r["status"] == STATUS_SKIPPED]
-    n_new = len(tab) - n_resumed
-    rep = {"sedtemp_version": __version__, "workflow_sha256": tab.meta.get("workflow_sha256", ""),
-           "n_sources": len(tab), **summary, "flags": {k: v["n"] for k, v in summary["classes"].items()},
+    tally = _tally(tab)
+    summary = tally.summary()
+    failed, skipped = tally.failed, tally.skipped
+    n_new = tally.n - n_resumed
+    rep = {"sedtemp_version": __version__, "workflow_sha256": tally.workflow_sha256 or "",
+           "n_sources": tally.n, **summary, "flags": {k: v["n"] for k, v in summary["classes"].items()},
            "failed": failed, "skipped": skipped, "seconds": round(seconds, 3),
            "sources_this_session": n_new, "resumed_from_checkpoint": n_resumed,
            "sources_per_second": round(n_new / seconds, 3) if seconds > 0 else None,
            "checkpoints": checkpoints or {}}
     lines = [f"sedtemp {__version__} run report", f"workflow sha256: {rep['workflow_sha256']}",
-             *summary_lines(summary, len(tab)),
+             *summary_lines(summary, tally.n),
              f"time: {seconds:.1f} s for {n_new} source(s) this session"
              + (f" ({n_resumed} resumed from checkpoints)" if n_resumed else "")]
     for item in (checkpoints or {}).get("damaged", []):
