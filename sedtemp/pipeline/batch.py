@@ -576,8 +576,9 @@ def _fit_all(get_executor, wf, mapped, todo, on_done, bar, n_keep):
     _in_flight(ex, _limit(n, len(chunks)), chunks, lambda c: (fn, wf, mapped.take(c)), done)
 
 
-def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor=None, output_dir=None,
-              progress=False, restart=False, keep_draws=False, return_table=True) -> Table | RunTally:
+def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor: cf.Executor | None = None,
+              output_dir: str | Path | None = None, progress: bool = False, restart: bool = False,
+              keep_draws: bool = False, return_table: bool = True) -> Table | RunTally:
     """Run fit -> predict -> compare over a mapped catalogue, in chunks, on an executor.
 
     Parameters

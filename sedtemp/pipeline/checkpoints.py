@@ -28,6 +28,7 @@ import logging
 import os
 import socket
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -255,7 +256,7 @@ class RunState:
         lines = "".join(f"{k} {v}\n" for k, v in sorted(self.parts.items()))
         atomic_write_text(self.parts_dir / JOURNAL, lines)
 
-    def read_parts(self, keep=None) -> list[Table]:
+    def read_parts(self, keep: Callable[[Table], None] | None = None) -> list[Table]:
         """The valid parts; damaged or duplicate ones are reported (``damaged``), removed, refitted.
 
         ``keep``: called with each valid part (in file-name order, i.e. by first
