@@ -53,3 +53,22 @@ def catalog_workflow_data(**sections):
     for name, values in sections.items():
         data[name] = {**data.get(name, {}), **values}
     return data
+
+
+#: Bands of the thin-dust catalogue of the batch and streamed-output tests.
+THIN_DUST_WAVE = (70, 160, 250, 350, 500)
+
+
+def thin_dust_catalog(n, seed):
+    """Invented thin-dust sources at 400 pc in five top-hat bands, 8 % noise (test data only)."""
+    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in THIN_DUST_WAVE])
+    model = ModifiedBlackbody(distance=400 * u.pc)
+    rng = np.random.default_rng(seed)
+    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
+    f, e, _ = simulate_photometry(bs, model, theta, snr=1 / 0.08, seed=rng)
+    t = Table()
+    t["name"] = [f"S{i:03d}" for i in range(n)]
+    for j, w in enumerate(THIN_DUST_WAVE):
+        t[f"F{w}"] = f[:, j] * u.Jy
+        t[f"E{w}"] = e[:, j] * u.Jy
+    return t

@@ -7,33 +7,19 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
+from invented import THIN_DUST_WAVE as WAVE
+from invented import thin_dust_catalog
 
 from sedtemp import pipeline
-from sedtemp.bands import Band, BandSet
 from sedtemp.errors import ConfigError
-from sedtemp.models import ModifiedBlackbody
 from sedtemp.pipeline import stages
 from sedtemp.pipeline.batch import InlineExecutor, run_batch
 from sedtemp.pipeline.catalog import map_catalog
 from sedtemp.pipeline.config import parse_workflow
-from sedtemp.simulate import simulate_photometry
-
-WAVE = (70, 160, 250, 350, 500)
 
 
 def make_catalog(n, seed=3):
-    """Invented thin-dust sources at 400 pc in five top-hat bands, 8 % noise (test data only)."""
-    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in WAVE])
-    model = ModifiedBlackbody(distance=400 * u.pc)
-    rng = np.random.default_rng(seed)
-    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
-    f, e, _ = simulate_photometry(bs, model, theta, snr=1 / 0.08, seed=rng)
-    t = Table()
-    t["name"] = [f"S{i:03d}" for i in range(n)]
-    for j, w in enumerate(WAVE):
-        t[f"F{w}"] = f[:, j] * u.Jy
-        t[f"E{w}"] = e[:, j] * u.Jy
-    return t
+    return thin_dust_catalog(n, seed)
 
 
 def make_workflow(**run):

@@ -1,35 +1,20 @@
 """The results and draws files, written chunk by chunk from the checkpoints, equal the in-memory route's."""
 
-import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
+from invented import THIN_DUST_WAVE as WAVE
+from invented import thin_dust_catalog
 
-from sedtemp.bands import Band, BandSet
-from sedtemp.models import ModifiedBlackbody
 from sedtemp.pipeline import batch
 from sedtemp.pipeline.batch import run_batch
 from sedtemp.pipeline.catalog import map_catalog
 from sedtemp.pipeline.config import OUTPUT_FORMATS, parse_workflow
 from sedtemp.pipeline.stages import process_chunk
 
-WAVE = (70, 160, 250, 350, 500)
-
 
 def make_catalog(n, seed=5):
-    """Invented thin-dust sources at 400 pc in five top-hat bands, 8 % noise (test data only)."""
-    bs = BandSet([Band.tophat(f"b{w}", w * u.um, 0.3) for w in WAVE])
-    rng = np.random.default_rng(seed)
-    theta = np.column_stack([rng.uniform(-1, 0, n), rng.uniform(12, 30, n), rng.uniform(1.4, 2.2, n)])
-    f = bs.band_fluxes(ModifiedBlackbody(distance=400 * u.pc).sed_si(bs.nu_grid_hz, theta)) / 1e-26
-    e = 0.08 * f
-    f = f + e * rng.standard_normal(f.shape)
-    t = Table()
-    t["name"] = [f"S{i:03d}" for i in range(n)]
-    for j, w in enumerate(WAVE):
-        t[f"F{w}"] = f[:, j] * u.Jy
-        t[f"E{w}"] = e[:, j] * u.Jy
-    return t
+    return thin_dust_catalog(n, seed)
 
 
 def make_workflow(fmt="ecsv", **output):
