@@ -6,7 +6,7 @@ from astropy.table import Table
 from invented import THIN_DUST_WAVE as WAVE
 from invented import thin_dust_catalog
 
-from sedtemp.pipeline import batch
+from sedtemp.pipeline import batch, writers
 from sedtemp.pipeline.batch import run_batch
 from sedtemp.pipeline.catalog import map_catalog
 from sedtemp.pipeline.config import OUTPUT_FORMATS, parse_workflow
@@ -45,7 +45,7 @@ def _in_memory_files(mapped, wf, folder):
     tabs = [process_chunk(wf, mapped.take(np.arange(a, min(a + size, len(mapped)))), n_keep=wf.output["n_keep"])
             for a in range(0, len(mapped), size)]
     ref = batch._finalise(tabs, wf, mapped)
-    batch._write_outputs(ref, wf, folder)
+    writers._write_outputs(ref, wf, folder)
     return ref
 
 
@@ -132,11 +132,11 @@ def test_interleaved_checkpoints_are_merged_by_row(tmp_path):
     """Chunks whose rows interleave (cut across a gap by an earlier version) still come out in row order."""
     wf = make_workflow()
     mapped = map_catalog(make_catalog(7), wf)
-    finished = batch._Finished(tmp_path, len(mapped))
+    finished = writers._Finished(tmp_path, len(mapped))
     for rows in ([0, 1, 4, 5], [2, 3], [6]):
         finished.add(process_chunk(wf, mapped.take(rows), n_keep=0))
     assert [len(g) for g in finished.groups()] == [2, 1]
-    chunks = list(batch._result_chunks(finished, mapped, {"k": 1}))
+    chunks = list(writers._result_chunks(finished, mapped, {"k": 1}))
     assert [start for start, _ in chunks] == [0, 6]
     assert [str(v) for _, t in chunks for v in t["name"]] == [str(v) for v in mapped.ids]
     assert chunks[0][1].meta == {"k": 1} and chunks[1][1].meta == {}
