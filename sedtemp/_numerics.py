@@ -111,7 +111,6 @@ class TensorSpline:
 
     def __init__(self, splines) -> None:
         first = splines[0]
-        self.tx, self.ty = (np.asarray(k, float) for k in first.get_knots())
         self.kx, self.ky = first.degrees
         fitpack_tx, fitpack_ty = first.tck[:2]
         for s in splines[1:]:

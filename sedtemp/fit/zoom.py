@@ -206,11 +206,12 @@ def window_nodes(grid: Any, centre: np.ndarray, half: np.ndarray | float, n: int
     # axis, then an outer sum (T-major, as the band fluxes)
     wT = np.diff(np.exp(lte), axis=1)
     with np.errstate(divide="ignore"):
-        lpT = grid.prior["T"].logpdf(np.exp(lt)) + np.log(wT)
         lwT = np.log(wT)
+        lpT = grid.prior["T"].logpdf(np.exp(lt)) + lwT
         if grid.has_beta:
             wb = np.diff(be, axis=1)
-            lpb, lwb = grid.prior["beta"].logpdf(bn) + np.log(wb), np.log(wb)
+            lwb = np.log(wb)
+            lpb = grid.prior["beta"].logpdf(bn) + lwb
         else:
             lpb = lwb = np.zeros((k, 1))
     lp = np.where(valid, (lpT[:, :, None] + lpb[:, None, :]).reshape(k, -1), -np.inf)
