@@ -100,6 +100,11 @@ class Nodes:
                      beta_edges=cut(self.beta_edges), g=self.g if self.g.ndim == 2 else self.g[sl],
                      log_prior=cut(self.log_prior), log_density=cut(self.log_density), affine=self.affine)
 
+    def put(self, rows, other):
+        """Overwrite the per-source nodes of ``rows`` (index array) with ``other``'s, in place."""
+        for name in ("lt", "lt_edges", "beta", "beta_edges", "g", "log_prior", "log_density"):
+            getattr(self, name)[rows] = getattr(other, name)
+
     def g_at(self, node):
         """Band fluxes (ns, n, nb) of node indices (ns, n)."""
         if self.g.ndim == 2:

@@ -182,6 +182,21 @@ class GridPosterior:
         cols = {"T": T, "beta": beta, self.amp_name: np.zeros(np.shape(T))}
         return np.column_stack([cols[n] for n in self.names])
 
+    def theta_on(self, T: np.ndarray, beta: np.ndarray) -> np.ndarray:
+        """Parameter array (k n m, n_params) at amplitude 10**0 on one tensor grid per row.
+
+        T (k, n) and beta (k, m) (beta ignored without a beta parameter):
+        the points of :meth:`templates_on`, T-major, without building the
+        repeated columns one by one.
+        """
+        k, n = T.shape
+        m = beta.shape[1] if self.has_beta else 1
+        th = np.zeros((k, n, m, len(self.names)))
+        th[..., self.names.index("T")] = T[:, :, None]
+        if self.has_beta:
+            th[..., self.names.index("beta")] = beta[:, None, :]
+        return th.reshape(-1, len(self.names))
+
     def node_log_prior(self, T: ArrayLike, beta: ArrayLike | None, wT: ArrayLike, wb: ArrayLike) -> np.ndarray:
         """Log prior mass of cells (T, beta) with widths wT (K) and wb, elementwise."""
         lp = self.prior["T"].logpdf(T) + np.log(wT)
@@ -259,7 +274,8 @@ class GridPosterior:
             return np.exp(self.template_spline()(x))
         y = np.clip(beta, self.beta_nodes[0], self.beta_nodes[-1])
         lg = self._tensor_spline().on_grids(x, y)
-        return np.exp(lg.reshape(lg.shape[0], -1, lg.shape[-1]))
+        lg = np.ascontiguousarray(lg).reshape(lg.shape[0], -1, lg.shape[-1])
+        return np.exp(lg, out=lg)
 
     def zoomed(self, T_range: tuple[float, float], beta_range: tuple[float, float] | None = None, *,
                n_nodes: int = 25) -> GridPosterior:

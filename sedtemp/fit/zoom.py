@@ -199,7 +199,7 @@ def window_nodes(grid: Any, centre: np.ndarray, half: np.ndarray | float, n: int
     lte = _edges(lt)
     be = _edges(bn) if grid.has_beta else np.full((k, 2), np.nan)
     g = grid.templates_on(lt, bn if grid.has_beta else None)
-    theta = grid.theta_of(np.exp(np.repeat(lt, bn.shape[1], axis=1)).ravel(), np.tile(bn, (1, n)).ravel())
+    theta = grid.theta_on(np.exp(lt), bn)
     # (a sum over bands is finite exactly when every band flux is: band fluxes are far below overflow)
     valid = np.asarray(grid.model.valid(theta), bool).reshape(k, -1) & np.isfinite(g @ np.ones(g.shape[-1]))
     # the prior is a product over T and beta: its log mass and the cell widths per
@@ -216,7 +216,9 @@ def window_nodes(grid: Any, centre: np.ndarray, half: np.ndarray | float, n: int
             lpb = lwb = np.zeros((k, 1))
     lp = np.where(valid, (lpT[:, :, None] + lpb[:, None, :]).reshape(k, -1), -np.inf)
     log_width = (lwT[:, :, None] + lwb[:, None, :]).reshape(k, -1)
-    return Nodes(lt=lt, lt_edges=lte, beta=bn, beta_edges=be, g=np.where(valid[..., None], g, 0.0),
+    if not valid.all():
+        g = np.where(valid[..., None], g, 0.0)
+    return Nodes(lt=lt, lt_edges=lte, beta=bn, beta_edges=be, g=g,
                  log_prior=lp, log_density=lp - log_width, affine=True)
 
 
@@ -249,21 +251,34 @@ def _posterior_mean(nodes, post):
 
 
 def _windows(grid, F_all, err, limit_only, centre, half, n):
-    """Windows widened until the edge mass is small: (nodes, still_on_edge, log_posterior on them)."""
+    """Windows widened until the edge mass is small: (nodes, still_on_edge, log_posterior on them).
+
+    Each round re-evaluates only the sources still on an edge; a source's
+    window depends on its own data alone, never on the others of the block.
+    """
+    nodes = window_nodes(grid, centre, half, n)
+    evaluated = grid.log_posterior(F_all, err, limit_only, nodes)
+    todo = np.arange(centre.shape[0])
+    sub_nodes, sub_eval = nodes, evaluated
     for attempt in range(_MAX_WIDEN + 1):
-        nodes = window_nodes(grid, centre, half, n)
-        evaluated = grid.log_posterior(F_all, err, limit_only, nodes)
-        logp = evaluated[0]
+        logp = sub_eval[0]
         peak = logp.max(axis=1, keepdims=True)
         post = np.exp(logp - np.where(np.isfinite(peak), peak, 0.0))
         post /= np.maximum(post.sum(axis=1, keepdims=True), 1e-300)
-        edge = _edge_mass(grid, nodes, post) > _EDGE_MASS
+        edge = _edge_mass(grid, sub_nodes, post) > _EDGE_MASS
         if not edge.any() or attempt == _MAX_WIDEN:
-            return nodes, edge, evaluated
-        mean = _posterior_mean(nodes, post)
-        centre = np.where(edge[:, None], mean, centre)
-        half = np.where(edge[:, None], _WIDEN * half, half)
-    return nodes, edge, evaluated  # pragma: no cover - loop always returns
+            break
+        mean = _posterior_mean(sub_nodes, post)
+        todo = todo[edge]
+        centre, half = mean[edge], _WIDEN * half[edge]
+        sub_nodes = window_nodes(grid, centre, half, n)
+        sub_eval = grid.log_posterior(F_all[todo], err[todo], limit_only[todo], sub_nodes)
+        nodes.put(todo, sub_nodes)
+        for full, part in zip(evaluated, sub_eval, strict=True):
+            full[todo] = part
+    on_edge = np.zeros(nodes.lt.shape[0], bool)
+    on_edge[todo] = edge
+    return nodes, on_edge, evaluated
 
 
 def refine_block(grid: Any, out: BlockSummary, rows: np.ndarray, flux: np.ndarray, err: np.ndarray,

@@ -39,7 +39,7 @@ FLAG_BITS = {"T_at_prior_low": 0, "T_at_prior_high": 1, "T_prior_dominated": 2, 
              "beta_at_prior_high": 4, "beta_prior_dominated": 5, "grid_too_coarse": 6, "poor_fit": 7,
              "no_valid_grid_node": 8, "other": 9}
 #: Pixels per vectorised block of the grid fitter (as for catalogues: cache-sized work arrays).
-_BLOCK = 64
+_BLOCK = 128
 _TILES = "tiles"
 _STATE = "maps-state.json"
 
