@@ -36,7 +36,7 @@ if TYPE_CHECKING:
 __all__: list[str] = []
 
 _ZOOM_NODES = 25
-_NODE_LEVELS = (25, 41, 61)
+_NODE_LEVELS = (25, 33, 41, 49, 55, 61)
 #: Window half-width in Laplace posterior sd (cells of 0.5 sd).
 _HALF_SD = 6.0
 #: Posterior mass on a non-prior window edge above which the window is widened.
@@ -174,13 +174,14 @@ def _n_nodes_one(rho):
 
     Across the ridge the sd is ~ sd_marginal sqrt(1 - rho^2), and a window of
     +-6 marginal sd has cells of 12 sd / (n - 1): n >= 12 / sqrt(1 - rho^2) + 1,
-    rounded up to 25, 41 or 61 (capped: beyond, the ridge is resolved to
+    rounded up to the next of _NODE_LEVELS (capped at 61: beyond, the ridge is resolved to
     less than a cell and the source may be flagged grid_too_coarse); sources
     with the same n are evaluated together.
     """
     r = abs(float(rho))
     need = 2 * _HALF_SD / np.sqrt(max(1.0 - r * r, 1e-6)) + 1
-    # three sizes only, so the sources of a block share few window shapes
+    # a few sizes only, so the sources of a block share few window shapes (the
+    # cost of a window grows as n^2: a level every ~15 % in n)
     return int(next(n for n in _NODE_LEVELS if n >= min(need, _NODE_LEVELS[-1])))
 
 
@@ -296,7 +297,7 @@ def refine_block(grid: Any, out: BlockSummary, rows: np.ndarray, flux: np.ndarra
     n_of = _n_nodes(rho) if grid.has_beta else np.full(len(rows), _ZOOM_NODES)
     if out.zoom_failed is None:
         out.zoom_failed = np.zeros(out.ok.size, bool)
-    for n_nodes in np.unique(n_of):  # at most three window sizes
+    for n_nodes in np.unique(n_of):  # at most len(_NODE_LEVELS) window sizes
         sel = np.flatnonzero(n_of == n_nodes)
         r = rows[sel]
         nodes, on_edge, evaluated = _windows(grid, f[sel], e[sel], lim[sel], y[sel], _HALF_SD * sd[sel],
