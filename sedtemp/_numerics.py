@@ -152,11 +152,11 @@ class TensorSpline:
         rx = np.minimum(ix0[:, None] + np.arange(wx), nx_coef - 1)  # clipped rows get zero weight
         ry = np.minimum(iy0[:, None] + np.arange(wy), self.ny_coef - 1)
         sub = c2[rx[:, :, None], ry[:, None, :]]  # (k, wx, wy, n_s)
-        n_s = sub.shape[-1]
-        t1 = np.matmul(bx, sub.reshape(k, wx, wy * n_s)).reshape(k, x.shape[1], wy, n_s)
-        # (k, n_s, n, wy) @ (k, 1, wy, m) -> (k, n_s, n, m)
-        out = np.matmul(t1.transpose(0, 3, 1, 2), by.transpose(0, 2, 1)[:, None])
-        return out.transpose(0, 2, 3, 1)
+        n_s, m = sub.shape[-1], y.shape[1]
+        # contract y first, (k, 1, m, wy) @ (k, wx, wy, n_s) -> (k, wx, m, n_s), then x in one
+        # batched product whose result is already laid out (k, n, m, n_s): no transposed copy
+        t1 = np.matmul(by[:, None], sub)
+        return np.matmul(bx, t1.reshape(k, wx, m * n_s)).reshape(k, x.shape[1], m, n_s)
 
     @staticmethod
     def _dense_basis(t, deg, x):

@@ -274,7 +274,7 @@ class GridPosterior:
             return np.exp(self.template_spline()(x))
         y = np.clip(beta, self.beta_nodes[0], self.beta_nodes[-1])
         lg = self._tensor_spline().on_grids(x, y)
-        lg = np.ascontiguousarray(lg).reshape(lg.shape[0], -1, lg.shape[-1])
+        lg = lg.reshape(lg.shape[0], -1, lg.shape[-1])
         return np.exp(lg, out=lg)
 
     def zoomed(self, T_range: tuple[float, float], beta_range: tuple[float, float] | None = None, *,
