@@ -121,19 +121,13 @@ _GROUP_WEIGHTS: dict = {}
 
 
 def _group_weights(masks, nb):
-    """0/1 band weights of each (disjoint) calibration group and of the bands in no group.
-
-    Cached per mask pattern. The last entry (bands in no group) is None when
-    every band is in a group.
-    """
+    """0/1 band weights of each (disjoint) calibration group, cached per mask pattern."""
     key = (nb, masks.shape, masks.tobytes())
     hit = _GROUP_WEIGHTS.get(key)
     if hit is None:
-        groups = [(m > 0).astype(float) for m in masks]
-        rest = 1.0 - np.sum(groups, axis=0) if groups else np.ones(nb)
         if len(_GROUP_WEIGHTS) > 256:
             _GROUP_WEIGHTS.clear()
-        hit = _GROUP_WEIGHTS[key] = (groups, rest if rest.any() else None)
+        hit = _GROUP_WEIGHTS[key] = [(m > 0).astype(float) for m in masks]
     return hit
 
 
@@ -155,19 +149,12 @@ def group_sums(F, iv, g, masks):
     else:  # per-source templates: one batched matrix-vector product
         def mm(w, gg):
             return np.matmul(gg, w[:, :, None])[..., 0]
-    groups, rest = _group_weights(masks, F.shape[1])
+    groups = _group_weights(masks, F.shape[1])
     Fiv = F * iv
     g2 = g * g
     parts = [(mm(iv * m, g2), mm(Fiv * m, g)) for m in groups]  # per-group a_g, b_g
-    if rest is not None:
-        a, b = mm(iv * rest, g2), mm(Fiv * rest, g)
-    else:
-        a = np.zeros(parts[0][0].shape)
-        b = np.zeros_like(a)
-    for ak, bk in parts:
-        a += ak
-        b += bk
-    return a, b, np.sum(F * Fiv, axis=1)[:, None], parts
+    # the totals over every used band directly (one product each, not a sum of the parts)
+    return mm(iv, g2), mm(Fiv, g), np.sum(F * Fiv, axis=1)[:, None], parts
 
 
 def conditional(F, iv, g, masks, d2, sums=None):
@@ -193,22 +180,30 @@ def conditional(F, iv, g, masks, d2, sums=None):
     else:  # the caller's sums stay as they are
         a, b, f, parts = sums
         a, b = a.copy(), b.copy()
-    det_prod = np.ones_like(a)  # prod_g (1 + d_g^2 A^2 a_g): one log at the end
+    det_prod = None  # prod_g (1 + d_g^2 A^2 a_g): one log at the end
     if parts:
         a_hat0 = np.maximum(b / np.where(a > 0, a, 1.0), 0.0)
         a_hat0 *= a_hat0
     for (ak, bk), dd in zip(parts, d2, strict=True):  # a few calibration groups (Woodbury, diagonal core)
+        den = dd * a_hat0
+        den *= ak
+        den += 1.0
         kap = dd * a_hat0
-        den = 1.0 + kap * ak
         kap /= den
-        a -= kap * ak * ak
-        b -= kap * ak * bk
-        f = f - kap * bk * bk
-        det_prod *= den
+        ka = kap * ak
+        a -= ka * ak
+        b -= ka * bk
+        kap *= bk
+        kap *= bk
+        f = f - kap
+        if det_prod is None:
+            det_prod = den
+        else:
+            det_prod *= den
     a = np.where(a > 0, a, np.inf)
     a_hat = b / a
     chi2 = f - b * a_hat
-    return a_hat, 1.0 / np.sqrt(a), chi2, np.log(det_prod)
+    return a_hat, 1.0 / np.sqrt(a), chi2, (np.log(det_prod) if det_prod is not None else np.zeros_like(a))
 
 
 def axis_quantiles(mass, x, edges, affine):
