@@ -2,9 +2,10 @@
 
 :func:`compare_chunk` is what the pipeline calls. Draw-level quantities of
 all sources are computed as (n_sources, n_draws) arrays: absorbed power by
-:func:`sedtemp.absorption.absorbed_power_chunk` (each shared spectrum
-integrated once), T_eq and the emitted power from the opacity's one emission
-table, quantiles and flags along the draw axis. Only the random draws of the
+:func:`sedtemp.absorption.absorbed_power_and_reference` (each shared spectrum
+integrated once, the ISRF(1) of ``U_implied`` with them), T_eq and the
+emitted power from the opacity's one emission table, quantiles and flags
+along the draw axis. Only the random draws of the
 field uncertainty (one stream per source, so a source's result does not
 depend on its chunk) and the verdict strings are made per source.
 """
@@ -18,7 +19,7 @@ import astropy.units as u
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ..absorption import absorbed_power_chunk, warn_extrapolated
+from ..absorption import absorbed_power_and_reference, warn_extrapolated
 from ..emission import check_beta, emission_table
 from ..errors import InputError
 from ..fit.summary import QUANTILES
@@ -50,8 +51,8 @@ def column_names() -> list[str]:
 def evaluate(T: np.ndarray, b: np.ndarray, fields: Sequence[RadiationField], opacity: Opacity, fac: np.ndarray,
              bounded: np.ndarray, q_op: np.ndarray) -> dict[str, np.ndarray]:
     """Draw-level arrays (n, m) for sources with draws T, b, factors fac (n, m, k), bounded (n, k)."""
-    n = T.shape[0]
-    p_comp, p_x = absorbed_power_chunk(fields, opacity, b, extrapolated=True)
+    # the ISRF(1) of U_implied is absorbed in the same integration as the fields
+    p_comp, p_x, p1 = absorbed_power_and_reference(fields, opacity, b, _ISRF1)
     k = p_comp.shape[-1]
     fac = fac[:, :, :k]
     nominal = p_comp.sum(axis=-1)
@@ -63,7 +64,6 @@ def evaluate(T: np.ndarray, b: np.ndarray, fields: Sequence[RadiationField], opa
     table = emission_table(opacity)
     out = {"T_eq": table.temperature(p_abs, b), "p_abs": p_abs, "nominal": nominal}
     out["p_emit"] = table.power(T, b)
-    p1 = absorbed_power_chunk([_ISRF1] * n, opacity, b)[..., 0]
     out["U_implied"] = out["p_emit"] / p1
     with np.errstate(invalid="ignore", divide="ignore"):
         out["extrapolated"] = np.sum(p_x * fac, axis=-1) * q_op / p_abs
