@@ -259,14 +259,16 @@ def _interpolate(table, how, nodes, aux, b, col):
     """table[beta node, column] at betas ``b`` (n, m) and columns ``col`` (n, k) -> (n, m, k)."""
     if how == "direct":
         return table[aux[:, :, None], col[:, None, :]]
-    ln = np.log(np.maximum(table, 1e-300))
+    n_cols = table.shape[1]
+    ln = np.log(np.maximum(table, 1e-300)).ravel()
     x = b / BETA_NODE_STEP
     j = np.clip(np.floor(x).astype(int) - 1 - aux, 0, nodes.size - 4)
     x = x - (aux + j)  # in [1, 2) inside the node range
     wts = (-(x - 1) * (x - 2) * (x - 3) / 6, x * (x - 2) * (x - 3) / 2,
            -x * (x - 1) * (x - 3) / 2, x * (x - 1) * (x - 2) / 6)
-    out = sum(wk[:, :, None] * ln[(j + k)[:, :, None], col[:, None, :]] for k, wk in enumerate(wts))
-    return np.where(table[j[:, :, None], col[:, None, :]] > 0, np.exp(out), 0.0)
+    first = (j * n_cols)[:, :, None] + col[:, None, :]  # flat index of (node j, column), (n, m, k)
+    out = sum(wk[:, :, None] * np.take(ln, first + k * n_cols) for k, wk in enumerate(wts))
+    return np.where(np.take(table.ravel() > 0, first), np.exp(out), 0.0)
 
 
 @overload

@@ -111,7 +111,7 @@ class _CellPolynomials:
     knot span use the end cells' polynomials; callers clip them first.
     """
 
-    def __init__(self, spline: RectBivariateSpline) -> None:
+    def __init__(self, spline: RectBivariateSpline, x_nodes: np.ndarray, y_nodes: np.ndarray) -> None:
         tx, ty, c = spline.tck
         nx, ny = tx.size - 4, ty.size - 4
         if tuple(spline.degrees) != (3, 3):
@@ -125,14 +125,35 @@ class _CellPolynomials:
         # along y: the same for every (x cell, p), with the a_p as B-spline coefficients in y
         sy = BSpline(ty, np.moveaxis(ax, 1, 0), 3)  # coefficients (ny, ncx, p)
         a = np.stack([sy(self.by[:-1], nu=q) / fact[q] for q in range(4)], axis=-1)  # (ncy, ncx, p, q)
-        self.coef = np.ascontiguousarray(a.transpose(1, 0, 2, 3)).reshape(self.ncx * self.ncy, 4, 4)
+        self.coef = np.ascontiguousarray(a.transpose(1, 0, 2, 3)).reshape(self.ncx * self.ncy, 16)
+        # the data nodes are evenly spaced and the cells are unions of node intervals (an
+        # interpolating spline's knots are data nodes), so a point's cell is found by arithmetic
+        self._x = self._locator(x_nodes, self.bx)
+        self._y = self._locator(y_nodes, self.by)
+
+    @staticmethod
+    def _locator(nodes, edges):
+        """(first node, node step, cell of each node interval) for evenly spaced ``nodes``."""
+        step = (nodes[-1] - nodes[0]) / (nodes.size - 1)
+        if not np.allclose(np.diff(nodes), step, rtol=1e-9, atol=0):
+            raise ValueError("_CellPolynomials needs evenly spaced data nodes")
+        mid = nodes[:-1] + 0.5 * step
+        return float(nodes[0]), float(step), np.clip(np.searchsorted(edges, mid) - 1, 0, edges.size - 2)
+
+    @staticmethod
+    def _cell(x, locator):
+        first, step, cell_of = locator
+        # truncation is the floor for the clipped, non-negative values; a point on a node may
+        # land in either neighbouring cell, whose polynomials agree there (the spline is C2);
+        # fmin / fmax map NaN to a valid cell (the value stays NaN)
+        i = np.fmax(np.fmin((x - first) / step, cell_of.size - 1), 0).astype(np.intp)
+        return cell_of[i]
 
     def __call__(self, x: np.ndarray, y: np.ndarray, *, derivs: int = 0) -> tuple[np.ndarray, ...]:
         """(value,) at the 1-D points (x, y), then d/dx and d^2/dx^2 up to order ``derivs`` (0-2)."""
-        ix = np.clip(np.searchsorted(self.bx, x, side="right") - 1, 0, self.ncx - 1)
-        iy = np.clip(np.searchsorted(self.by, y, side="right") - 1, 0, self.ncy - 1)
+        ix, iy = self._cell(x, self._x), self._cell(y, self._y)
         u, v = x - self.bx[ix], (y - self.by[iy])[:, None]
-        c = self.coef[ix * self.ncy + iy]  # (n, 4 powers of u, 4 powers of v)
+        c = np.take(self.coef, ix * self.ncy + iy, axis=0).reshape(-1, 4, 4)  # (n, powers of u, powers of v)
         c0, c1, c2, c3 = (((c[:, :, 3] * v + c[:, :, 2]) * v + c[:, :, 1]) * v + c[:, :, 0]).T  # Horner in v
         out = (((c3 * u + c2) * u + c1) * u + c0,)
         if derivs >= 1:
@@ -194,7 +215,7 @@ class EmissionTable:
     def cells(self) -> _CellPolynomials:
         """:attr:`spline` as one polynomial per knot cell: the fast evaluator of the same function."""
         if self._cells is None:
-            self._cells = _CellPolynomials(self.spline)
+            self._cells = _CellPolynomials(self.spline, self.ln_t, self.beta)
         return self._cells
 
     def _ln_power(self, lnt, b, derivs=1):
@@ -244,14 +265,15 @@ class EmissionTable:
         """ln T from :meth:`_guess_table`, bilinear in (ln P, beta): within ~1e-4 of the spline's root."""
         y0, dy, tab = self._guess_table()
         fy = (lnp - y0) / dy
-        j = np.clip(np.floor(fy).astype(int), 0, tab.shape[0] - 2)
-        fy = fy - j  # outside [0, 1] beyond the grid: linear continuation
         fb = (b - self.beta[0]) / (self.beta[1] - self.beta[0])
-        k = np.clip(np.floor(fb).astype(int), 0, self.beta.size - 2)
-        fb = fb - k
-        lo = tab[j, k] + fy * (tab[j + 1, k] - tab[j, k])
-        hi = tab[j, k + 1] + fy * (tab[j + 1, k + 1] - tab[j, k + 1])
-        return lo + fb * (hi - lo)
+        # cells by fmin / fmax, which map a NaN to a valid index (the result stays NaN)
+        j = np.fmax(np.fmin(np.floor(fy), tab.shape[0] - 2), 0).astype(np.intp)
+        k = np.fmax(np.fmin(np.floor(fb), self.beta.size - 2), 0).astype(np.intp)
+        fy, fb = fy - j, fb - k  # fy outside [0, 1] beyond the grid: linear continuation
+        with np.errstate(invalid="ignore"):  # an infinite power: inf - inf, NaN, as before
+            lo = tab[j, k] + fy * (tab[j + 1, k] - tab[j, k])
+            hi = tab[j, k + 1] + fy * (tab[j + 1, k + 1] - tab[j, k + 1])
+            return lo + fb * (hi - lo)
 
     def temperature(self, power: ArrayLike, beta: ArrayLike) -> np.ndarray:
         """The T (K) with P(T, beta) = ``power`` (W kg^-1, >= 0); 0 where the power is 0.
