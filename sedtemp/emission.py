@@ -124,11 +124,15 @@ class _CellPolynomials:
         fact = (1.0, 1.0, 2.0, 6.0)
         # along x: a_p(cell, j) = (d/dx)^p sum_i c_ij B_i(x) / p! at each cell's lower edge
         sx = BSpline(tx, c.reshape(nx, ny), 3)
-        ax = np.stack([sx(self.bx[:-1], nu=p) / fact[p] for p in range(4)], axis=-1)  # (ncx, ny, p)
+        ax = np.empty((ny, self.ncx, 4))  # laid out as the coefficients of the splines in y
+        for p in range(4):
+            ax[:, :, p] = sx(self.bx[:-1], nu=p).T / fact[p]
         # along y: the same for every (x cell, p), with the a_p as B-spline coefficients in y
-        sy = BSpline(ty, np.moveaxis(ax, 1, 0), 3)  # coefficients (ny, ncx, p)
-        a = np.stack([sy(self.by[:-1], nu=q) / fact[q] for q in range(4)], axis=-1)  # (ncy, ncx, p, q)
-        self.coef = np.ascontiguousarray(a.transpose(1, 0, 2, 3)).reshape(self.ncx * self.ncy, 16)
+        sy = BSpline(ty, ax, 3)
+        coef = np.empty((self.ncx, self.ncy, 4, 4))  # (x cell, y cell, power of x, power of y)
+        for q in range(4):
+            coef[:, :, :, q] = sy(self.by[:-1], nu=q).transpose(1, 0, 2) / fact[q]
+        self.coef = coef.reshape(self.ncx * self.ncy, 16)
         # the data nodes are evenly spaced and the cells are unions of node intervals (an
         # interpolating spline's knots are data nodes), so a point's cell is found by arithmetic
         self._x = self._locator(x_nodes, self.bx)
