@@ -98,11 +98,13 @@ def decompose(component: RadiationField) -> Term:
 
 def _beta_nodes(b):
     """Nodes for the betas ``b`` and how to use them: ('direct', uniq, inverse) or ('lagrange', nodes, k0)."""
-    uniq, inv = np.unique(b, return_inverse=True)
-    if uniq.size <= _DIRECT_MAX:
-        return "direct", uniq, inv.reshape(b.shape)
-    k_lo = int(np.floor(uniq[0] / BETA_NODE_STEP)) - 2
-    k_hi = int(np.ceil(uniq[-1] / BETA_NODE_STEP)) + 2
+    # a few draws with more than _DIRECT_MAX distinct values decide without sorting them all
+    if np.unique(b.ravel()[:4 * _DIRECT_MAX]).size <= _DIRECT_MAX:
+        uniq, inv = np.unique(b, return_inverse=True)
+        if uniq.size <= _DIRECT_MAX:
+            return "direct", uniq, inv.reshape(b.shape)
+    k_lo = int(np.floor(b.min() / BETA_NODE_STEP)) - 2
+    k_hi = int(np.ceil(b.max() / BETA_NODE_STEP)) + 2
     return "lagrange", BETA_NODE_STEP * np.arange(k_lo, k_hi + 1), k_lo
 
 

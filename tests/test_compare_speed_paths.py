@@ -141,3 +141,19 @@ def test_compare_chunk_equals_a_per_source_per_draw_reference():
             have = [got[f"{name}_{k}"][i] for k in QUANTILES]
             np.testing.assert_allclose(have, want, rtol=1e-9, atol=0, err_msg=name)
         assert got["p_warmer"][i] == np.mean(ref["T_eq"] < T[i])
+
+
+def test_compare_stream_is_the_second_child_of_the_source_streams():
+    # numpy's SeedSequence.spawn: child i has the parent's entropy and spawn key (i,); the
+    # shortcut must give the identical stream (same state words, same draws)
+    from importlib import resources
+
+    from sedtemp.pipeline import load_workflow
+    from sedtemp.pipeline.stages import _compare_stream, source_streams
+
+    with resources.as_file(resources.files("sedtemp") / "data" / "demo" / "demo.toml") as path:
+        wf = load_workflow(path)
+    for key in ("VAR-0001", "VAR-0299", "x", ""):
+        want, got = source_streams(wf, key)[1], _compare_stream(wf, key)
+        assert (got.entropy, got.spawn_key, got.pool_size) == (want.entropy, want.spawn_key, want.pool_size)
+        np.testing.assert_array_equal(got.generate_state(4), want.generate_state(4))

@@ -60,13 +60,13 @@ def evaluate(T: np.ndarray, b: np.ndarray, fields: Sequence[RadiationField], opa
         bad = int(np.flatnonzero(~np.all(nominal > 0, axis=1))[0])
         raise InputError(f"compare: the field {fields[bad]!r} supplies no absorbed power; check the field "
                          "and the opacity")
-    p_abs = np.sum(p_comp * fac, axis=-1) * q_op
+    p_abs = np.einsum("nmk,nmk->nm", p_comp, fac) * q_op  # the drawn factors, summed over components
     table = emission_table(opacity)
     out = {"T_eq": table.temperature(p_abs, b), "p_abs": p_abs, "nominal": nominal}
     out["p_emit"] = table.power(T, b)
     out["U_implied"] = out["p_emit"] / p1
     with np.errstate(invalid="ignore", divide="ignore"):
-        out["extrapolated"] = np.sum(p_x * fac, axis=-1) * q_op / p_abs
+        out["extrapolated"] = np.einsum("nmk,nmk->nm", p_x, fac) * q_op / p_abs
     if bounded[:, :k].any():
         p_floor = np.sum(p_comp * fac * ~bounded[:, None, :k], axis=-1) * q_op
         t_floor = table.temperature(p_floor, b)

@@ -345,12 +345,20 @@ def _wants_ratio_draws(wf: Workflow) -> bool:
     return bool(pop.get("enabled")) and pop.get("equilibrium_scatter") is not None
 
 
+def _compare_stream(wf: Workflow, key: str) -> np.random.SeedSequence:
+    """The compare stream of :func:`source_streams` (its second child) without spawning the first.
+
+    ``spawn`` gives child i the parent's entropy with spawn key (i,), so this is
+    the same SeedSequence (tests/test_compare_speed_paths.py checks it).
+    """
+    return np.random.SeedSequence(source_seed(wf.run["seed"], key).entropy, spawn_key=(1,))
+
+
 def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity, keep_draws=False):
     from ..compare import compare_chunk
 
     f = wf.field
-    seeds = [np.random.SeedSequence(int(source_streams(wf, mapped.keys[i])[1].generate_state(1)[0]))
-             for i in idx]
+    seeds = [np.random.SeedSequence(int(_compare_stream(wf, mapped.keys[i]).generate_state(1)[0])) for i in idx]
     return compare_chunk(T, beta, fields, opacity, mass_draws=mass,
                          field_uncertainty=_field_uncertainty(wf),
                          opacity_uncertainty=float(wf.compare["opacity_uncertainty"]),
