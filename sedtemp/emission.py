@@ -46,18 +46,18 @@ __all__ = [
 BETA_RANGE = (0.0, 5.0)
 #: Temperatures spanned by the table (K); outside it ln P is continued linearly in ln T.
 T_TABLE_RANGE_K = (0.5, 5000.0)
-_DLNT = 0.025  # node spacing in ln T
+_DLNT = 0.05  # node spacing in ln T
 _DBETA = 0.025  # node spacing in beta
 _DLNP = 0.1  # node spacing in ln P of the inverted table (first guesses only)
 _NEWTON_TOL = 1e-10  # estimated error in ln T after the last Newton step
 _MAX_NEWTON = 30
 _BETA_MARGIN = 0.2  # nodes beyond BETA_RANGE so the spline is interior everywhere
 # emission quadrature: log-spaced nodes from 1e7 Hz (3 m) to 3e16 Hz (10 nm) and just beyond,
-# 7 per ln T step of the table (6105 nodes, ~0.0036 apart in ln nu), enough for every T of the
+# 14 per ln T step of the table (6105 nodes, ~0.0036 apart in ln nu), enough for every T of the
 # table (trapezoid in ln nu, checked against quad); on this lattice nu / T takes one value per
-# (nu index - 7 T index), so B_nu(T) = T^3 B_(nu/T)(1 K) is evaluated once per value
+# (nu index - 14 T index), so B_nu(T) = T^3 B_(nu/T)(1 K) is evaluated once per value
 _NU_EMIT_RANGE_HZ = (1e7, 3e16)
-_NU_PER_T_STEP = 7
+_NU_PER_T_STEP = 14
 _MAX_CACHED = 32
 _CACHE: dict = {}
 
@@ -189,14 +189,16 @@ class EmissionTable:
     Notes
     -----
     Bicubic spline (scipy ``RectBivariateSpline``, interpolating) on nodes
-    0.025 apart in ln T and 0.025 in beta: relative error of P below 1e-7
-    for a power law and below 5e-6 for the UV-capped and tabulated opacities
-    (where the cap's break crosses the Planck peak, T > 2000 K, ln P bends
-    sharply in beta; nodes 0.05 apart in beta left 6e-5 there), and of the
-    inverted T below 1e-5 / (4 + beta) against direct integration, and below
-    1e-9 against the spline itself (tests/test_emission.py and
-    tests/test_compare_speed_paths.py check P and T against
-    scipy.integrate.quad and, for a power law, against the exact result).
+    0.05 apart in ln T and 0.025 in beta. For a power law ln P is linear in
+    ln T and the relative error of P is below 1e-7 (of the inverted T below
+    1e-8). For UV-capped and tabulated opacities the error comes from beta:
+    where the cap's break crosses the Planck peak (T > 2000 K) ln P bends
+    sharply in beta, and nodes 0.05 apart in beta missed 1e-5 in T there;
+    now the inverted T is within ~1.5e-6 of direct integration (measured;
+    the tests check 1e-5), the ln T spacing adding < 3e-7 in P. The
+    inversion finds the spline's root to ~1e-10 in ln T. tests/test_emission.py
+    and tests/test_compare_speed_paths.py check P and T against
+    scipy.integrate.quad and, for a power law, against the exact result.
     """
 
     key: tuple
