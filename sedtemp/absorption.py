@@ -173,33 +173,67 @@ _COLUMNS: dict = {}
 _COLUMNS_MAX = 256
 
 
+def _node_powers(opacity, js, k_a, k_b, nu, w, nu_extrap):
+    """Unit powers (n, len(js)) of the spectra ``js`` on Lagrange nodes k_a .. k_b, and above nu_extrap (or None)."""
+    kw = _kappa_rows(opacity, BETA_NODE_STEP * np.arange(k_a, k_b + 1), nu, w)
+    jmat = np.stack(js, axis=1)
+    if nu_extrap is None:
+        return kw @ jmat, None
+    # both in one product: the rows of kw (the larger operand) are read once
+    both = kw @ np.concatenate([jmat, jmat * (nu > nu_extrap)[:, None]], axis=1)
+    return both[:, :len(js)], both[:, len(js):]
+
+
+def _extended(old, left, right, c):
+    """A cached column (first node, powers, powers above the limit or None) with column ``c`` of the
+    new nodes' powers (``_node_powers`` results, or None) joined on either side."""
+    first, vals, above = old
+    v_parts, a_parts = [], []
+    if left is not None:
+        first -= left[0].shape[0]
+        v_parts.append(left[0][:, c])
+        a_parts.append(None if left[1] is None else left[1][:, c])
+    v_parts.append(vals)
+    a_parts.append(above)
+    if right is not None:
+        v_parts.append(right[0][:, c])
+        a_parts.append(None if right[1] is None else right[1][:, c])
+    return first, np.concatenate(v_parts), None if above is None else np.concatenate(a_parts)
+
+
 def _node_columns(opacity, specs, k_lo, n_nodes, nu, w, nu_extrap):
     """Columns (n_nodes, n_specs) of unit powers on Lagrange nodes k_lo .. k_lo + n_nodes - 1, and above nu_extrap.
 
     ``specs`` are (spectrum key, J on the grid) of unextinguished unit spectra
     with value keys. A column is integrated once per process over the node
-    range seen so far and extended (recomputed over the wider range, one
-    matrix product for every column that needs it) when a chunk's betas go
-    beyond it, so later chunks only index.
+    range seen so far and extended (the new nodes only, one matrix product for
+    the columns that share a range) when a chunk's betas go beyond it, so
+    later chunks only index and a node's value never changes.
     """
     gkey = (_opacity_key(opacity), _grid_key(nu), nu_extrap)
     k_hi = k_lo + n_nodes - 1
     got = {key: _COLUMNS.get((gkey, key)) for key, _ in specs}
-    stale = [(key, j) for key, j in specs
-             if got[key] is None or got[key][0] > k_lo or got[key][0] + got[key][1].size - 1 < k_hi]
-    if stale:
-        if len(_COLUMNS) + len(stale) > _COLUMNS_MAX:
-            _COLUMNS.clear()
-        lo = min([k_lo] + [got[key][0] for key, _ in stale if got[key] is not None])
-        hi = max([k_hi] + [got[key][0] + got[key][1].size - 1 for key, _ in stale if got[key] is not None])
-        kw = _kappa_rows(opacity, BETA_NODE_STEP * np.arange(lo, hi + 1), nu, w)
-        jmat = np.stack([j for _, j in stale], axis=1)
-        if nu_extrap is not None:  # both in one product: the rows of kw (the larger operand) are read once
-            jmat = np.concatenate([jmat, jmat * (nu > nu_extrap)[:, None]], axis=1)
-        vals = kw @ jmat
-        for c, (key, _) in enumerate(stale):
-            above = None if nu_extrap is None else vals[:, len(stale) + c].copy()
-            got[key] = _COLUMNS[(gkey, key)] = (lo, vals[:, c].copy(), above)
+    stale: dict = {}  # cached range (first node, count) or None -> the columns to extend or make
+    for key, j in specs:
+        have = got[key]
+        if have is None or have[0] > k_lo or have[0] + have[1].size - 1 < k_hi:
+            stale.setdefault(None if have is None else (have[0], have[1].size), []).append((key, j))
+    if stale and len(_COLUMNS) + sum(map(len, stale.values())) > _COLUMNS_MAX:
+        _COLUMNS.clear()
+    for span, members in stale.items():
+        js = [j for _, j in members]
+        if span is None:
+            new = _node_powers(opacity, js, k_lo, k_hi, nu, w, nu_extrap)
+            for c, (key, _) in enumerate(members):
+                got[key] = (k_lo, new[0][:, c].copy(), None if new[1] is None else new[1][:, c].copy())
+        else:
+            k0, k1 = span[0], span[0] + span[1] - 1
+            left = _node_powers(opacity, js, k_lo, k0 - 1, nu, w, nu_extrap) if k_lo < k0 else None
+            right = _node_powers(opacity, js, k1 + 1, k_hi, nu, w, nu_extrap) if k_hi > k1 else None
+            for c, (key, _) in enumerate(members):
+                got[key] = _extended(got[key], left, right, c)
+        for key, _ in members:
+            _COLUMNS[(gkey, key)] = got[key]
     rows = [slice(k_lo - got[key][0], k_lo - got[key][0] + n_nodes) for key, _ in specs]
     table = np.stack([got[key][1][r] for (key, _), r in zip(specs, rows, strict=True)], axis=1)
     if nu_extrap is None:

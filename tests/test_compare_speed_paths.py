@@ -96,6 +96,10 @@ def test_node_columns_cached_across_chunks_equal_a_cold_computation():
     _clear_caches()
     warm = [absorbed_power_chunk(fields, BARE, b, extrapolated=True) for b in chunks]
     assert absorption._COLUMNS  # the unextinguished spectra went through the node cache
+    # extending a column adds nodes and changes none: the first chunk again, bit for bit
+    again = absorbed_power_chunk(fields, BARE, chunks[0], extrapolated=True)
+    np.testing.assert_array_equal(again[0], warm[0][0])
+    np.testing.assert_array_equal(again[1], warm[0][1])
     for b, (p, px) in zip(chunks, warm, strict=True):
         _clear_caches()
         p0, px0 = absorbed_power_chunk(fields, BARE, b, extrapolated=True)
