@@ -411,13 +411,12 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws: np.ndarray, beta
     opacity = wf.opacity()
     default_beta = _default_beta(wf)
     counts = np.isfinite(T_draws).sum(axis=1) if idx.size else np.zeros(n, int)
-    rows: list = [{} for _ in range(n)]
+    columns: dict = {}  # name -> object array (n,), None where not compared
     for m in np.unique(counts[idx]) if idx.size else []:
         group = idx[counts[idx] == m]
         _compare_groups(wf, mapped, group, int(m), T_draws, beta_draws, mass_draws, fit_flags,
-                        field_of, opacity, default_beta, rows, failures)
-    names = list(dict.fromkeys(k for r in rows for k in r))
-    return {k: np.array([r.get(k) for r in rows], dtype=object) for k in names}, failures
+                        field_of, opacity, default_beta, columns, failures)
+    return columns, failures
 
 
 def _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta):
@@ -433,8 +432,8 @@ def _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta):
 
 
 def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_flags, field_of,
-                    opacity, default_beta, rows, failures):
-    """Compare ``group`` in one call; on failure, one source at a time to find the bad ones."""
+                    opacity, default_beta, columns, failures):
+    """Compare ``group`` in one call, into ``columns``; on failure, one source at a time to find the bad ones."""
     T, beta, mass = _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta)
     fields = [field_of[i] for i in group]
     with warnings.catch_warnings():
@@ -450,14 +449,17 @@ def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_f
                 return
             for j in range(len(group)):
                 _compare_groups(wf, mapped, group[j:j + 1], m, T_draws, beta_draws, mass_draws, fit_flags,
-                                field_of, opacity, default_beta, rows, failures)
+                                field_of, opacity, default_beta, columns, failures)
             return
     ratio = cols.pop("draws_ratio", None)
     cols.pop("draws_T_eq", None)
-    for j, i in enumerate(group):
-        rows[i] = {k: v[j] for k, v in cols.items()}
-        if ratio is not None:  # per-draw T_fit / T_eq, for the population's heated fraction
-            rows[i]["_ratio_draws"] = ratio[j]
+    n = len(mapped)
+    for k, v in cols.items():  # the group's values (numpy scalars) into its rows of each column
+        columns.setdefault(k, np.full(n, None, dtype=object))[group] = list(v)
+    if ratio is not None:  # per-draw T_fit / T_eq, for the population's heated fraction
+        col = columns.setdefault("_ratio_draws", np.full(n, None, dtype=object))
+        for j, i in enumerate(group):
+            col[i] = ratio[j]
 
 
 def column_rows(columns: dict, n: int) -> list[dict]:
