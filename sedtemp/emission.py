@@ -4,11 +4,11 @@ The emitted power per unit mass is a property of the opacity alone. It is
 tabulated once per process and opacity (:func:`emission_table`, cached by
 :meth:`sedtemp.opacity.Opacity.cache_key`) as ln P on a grid in ln T and
 beta, interpolated by a bicubic spline, and inverted (the temperature that
-emits a given power) by Newton's method on that spline. Both the spline and
-its inverted table are evaluated as one bicubic polynomial per knot cell
-(:class:`_CellPolynomials`: value and slope from one gather of 16
-coefficients per point). The equilibrium predictor and the comparison use
-this one implementation.
+emits a given power) by Newton's method on that spline, from a first guess
+read off the table inverted per beta node. The spline is evaluated as one
+bicubic polynomial per knot cell (:class:`_CellPolynomials`: value and
+derivatives from one gather of 16 coefficients per point). The equilibrium
+predictor and the comparison use this one implementation.
 
 The exact analytic result for a pure power law, kept as the reference the
 tests check against, is :func:`powerlaw_emitted_power`.
@@ -107,9 +107,9 @@ class _CellPolynomials:
     power-basis coefficients of every cell (in the offsets from the cell's
     lower corner) are computed once, exactly, from the B-spline coefficients
     (the derivatives at the cell corners, :class:`scipy.interpolate.BSpline`),
-    so an evaluation is one search per axis, one gather of 16 coefficients
-    and two Horner schemes, with the first and second derivatives in x from
-    the same gather. Agrees with ``RectBivariateSpline.ev`` to rounding
+    so an evaluation is an index computation per axis (the data nodes are
+    evenly spaced), one gather of 16 coefficients and two Horner schemes,
+    with the first and second derivatives in x from the same gather. Agrees with ``RectBivariateSpline.ev`` to rounding
     (tests/test_compare_speed_paths.py checks 1e-12). Points outside the
     knot span use the end cells' polynomials; callers clip them first.
     """

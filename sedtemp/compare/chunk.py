@@ -67,6 +67,7 @@ def evaluate(T: np.ndarray, b: np.ndarray, fields: Sequence[RadiationField], opa
     out["U_implied"] = out["p_emit"] / p1
     with np.errstate(invalid="ignore", divide="ignore"):
         out["extrapolated"] = np.einsum("nmk,nmk->nm", p_x, fac) * q_op / p_abs
+    out["extrapolated_median"] = np.median(out["extrapolated"], axis=1)  # a column, and for the warning
     if bounded[:, :k].any():
         p_floor = np.sum(p_comp * fac * ~bounded[:, None, :k], axis=-1) * q_op
         t_floor = table.temperature(p_floor, b)
@@ -123,8 +124,7 @@ def columns_from(T: np.ndarray, mass: np.ndarray | None, ev: Mapping[str, np.nda
     cols["p_warmer"] = np.mean(t_eq < T, axis=1)
     cols["stochastic_fraction"] = sf
     cols["T_eq_is_upper_bound"] = np.asarray(bounded_any, bool)
-    cols["opacity_extrapolated_fraction"] = (ev["extrapolated_median"] if "extrapolated_median" in ev
-                                             else np.median(ev["extrapolated"], axis=1))
+    cols["opacity_extrapolated_fraction"] = ev["extrapolated_median"]
     q3 = np.array([cols["ratio_p16"], cols["ratio_median"], cols["ratio_p84"]])
     flags = classify(ratio, ratio_floor, sf, [bool(x) for x in untrusted], th, ratio_quantiles=q3)
     lum = None if mass is None else np.median(draws["extra_luminosity"], axis=1)
@@ -229,7 +229,6 @@ def compare_chunk(T_draws: u.Quantity | ArrayLike, beta_draws: ArrayLike, fields
         f_i, b_i, q_i = source_factors(field_uncertainty, fld, projected, m, seeds[i], opacity_uncertainty, shared)
         fac[i, :, :f_i.shape[1]], bounded[i, :b_i.size], q_op[i] = f_i, b_i, q_i
     ev = evaluate(T, b, fields, opacity, fac, bounded, q_op)
-    ev["extrapolated_median"] = np.median(ev["extrapolated"], axis=1)
     warn_extrapolated(ev["extrapolated_median"], opacity, "compare_chunk")
     untrusted = [untrusted_flags(None if fit_flags is None else fit_flags[i]) for i in range(n)]
     cols, ratio, _ = columns_from(T, mass, ev, untrusted, bounded.any(axis=1), th)
