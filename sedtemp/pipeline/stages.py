@@ -420,14 +420,17 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws: np.ndarray, beta
 
 
 def _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta):
-    T = np.stack([T_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+    # every row of the group has exactly m finite T draws: the finite ones, in order, row by row
+    t_rows = np.asarray(T_draws, float)[group]
+    keep = np.isfinite(t_rows)
+    T = t_rows[keep].reshape(len(group), m)
     beta = np.full_like(T, default_beta)
     if beta_draws is not None:
-        b = np.stack([beta_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+        b = np.asarray(beta_draws, float)[group][keep].reshape(len(group), m)
         beta = np.where(np.isfinite(b), b, default_beta)
     mass = None
     if wf.model["amplitude"] == "mass" and mass_draws is not None:
-        mass = 10.0 ** np.stack([mass_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+        mass = 10.0 ** np.asarray(mass_draws, float)[group][keep].reshape(len(group), m)
     return T, beta, mass
 
 
