@@ -188,17 +188,13 @@ def _extended(old, left, right, c):
     """A cached column (first node, powers, powers above the limit or None) with column ``c`` of the
     new nodes' powers (``_node_powers`` results, or None) joined on either side."""
     first, vals, above = old
-    v_parts, a_parts = [], []
+    before, after = ([] if left is None else [left]), ([] if right is None else [right])
     if left is not None:
         first -= left[0].shape[0]
-        v_parts.append(left[0][:, c])
-        a_parts.append(None if left[1] is None else left[1][:, c])
-    v_parts.append(vals)
-    a_parts.append(above)
-    if right is not None:
-        v_parts.append(right[0][:, c])
-        a_parts.append(None if right[1] is None else right[1][:, c])
-    return first, np.concatenate(v_parts), None if above is None else np.concatenate(a_parts)
+    vals = np.concatenate([x[0][:, c] for x in before] + [vals] + [x[0][:, c] for x in after])
+    if above is not None:  # then the new nodes have their part above the limit too
+        above = np.concatenate([x[1][:, c] for x in before] + [above] + [x[1][:, c] for x in after])
+    return first, vals, above
 
 
 def _node_columns(opacity, specs, k_lo, n_nodes, nu, w, nu_extrap):
@@ -212,7 +208,7 @@ def _node_columns(opacity, specs, k_lo, n_nodes, nu, w, nu_extrap):
     """
     gkey = (_opacity_key(opacity), _grid_key(nu), nu_extrap)
     k_hi = k_lo + n_nodes - 1
-    got = {key: _COLUMNS.get((gkey, key)) for key, _ in specs}
+    got: dict = {key: _COLUMNS.get((gkey, key)) for key, _ in specs}
     stale: dict = {}  # cached range (first node, count) or None -> the columns to extend or make
     for key, j in specs:
         have = got[key]
@@ -270,7 +266,7 @@ def _unit_table(terms, opacity, nodes, nu, w, nu_extrap, k_lo=None):
         blocks.append((offset, cols))
         offset += av.size
     table = np.empty((nodes.size, offset))
-    extra = None if nu_extrap is None else np.empty((nodes.size, offset))
+    above = np.empty((nodes.size, offset))  # the part above nu_extrap (unused without one)
     if blocks:
         kw = _kappa_rows(opacity, nodes, nu, w)  # (n_nodes, n_nu)
         where = np.concatenate([o + np.arange(c.shape[1]) for o, c in blocks])
@@ -279,13 +275,14 @@ def _unit_table(terms, opacity, nodes, nu, w, nu_extrap, k_lo=None):
             table[:, where] = kw @ jmat
         else:  # both in one product: the rows of kw (the larger operand) are read once
             both = kw @ np.concatenate([jmat, jmat * (nu > nu_extrap)[:, None]], axis=1)
-            table[:, where], extra[:, where] = both[:, :where.size], both[:, where.size:]
+            table[:, where], above[:, where] = both[:, :where.size], both[:, where.size:]
     if cached:
         where = np.array([o for o, _, _ in cached])
         t_c, x_c = _node_columns(opacity, [(key, j) for _, key, j in cached], k_lo, nodes.size, nu, w, nu_extrap)
         table[:, where] = t_c
-        if extra is not None:
-            extra[:, where] = x_c
+        if x_c is not None:
+            above[:, where] = x_c
+    extra = None if nu_extrap is None else above
     col = [start[(t.key, None if t.curve is None else t.curve.key)]
            + groups[(t.key, None if t.curve is None else t.curve.key)]["av"][t.A_V] for t in terms]
     return table, np.asarray(col, int), extra

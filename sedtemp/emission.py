@@ -162,7 +162,7 @@ class _CellPolynomials:
         u, v = x - self.bx[ix], (y - self.by[iy])[:, None]
         c = np.take(self.coef, ix * self.ncy + iy, axis=0).reshape(-1, 4, 4)  # (n, powers of u, powers of v)
         c0, c1, c2, c3 = (((c[:, :, 3] * v + c[:, :, 2]) * v + c[:, :, 1]) * v + c[:, :, 0]).T  # Horner in v
-        out = (((c3 * u + c2) * u + c1) * u + c0,)
+        out: tuple[np.ndarray, ...] = (((c3 * u + c2) * u + c1) * u + c0,)
         if derivs >= 1:
             out += ((3 * c3 * u + 2 * c2) * u + c1,)
         if derivs >= 2:

@@ -131,7 +131,7 @@ def columns_from(T: np.ndarray, mass: np.ndarray | None, ev: Mapping[str, np.nda
     solar = np.median(draws["extra_power_solar"], axis=1)
     cols["flag"] = flags
     cols["verdict"] = np.array([  # text per source
-        verdict(flags[i], q=q3[:, i], p_warmer=cols["p_warmer"][i], n=m, th=th, bounded=bool(bounded_any[i]),
+        verdict(flags[i], q=tuple(q3[:, i]), p_warmer=cols["p_warmer"][i], n=m, th=th, bounded=bool(bounded_any[i]),
                 untrusted=untrusted[i], stochastic_fraction=sf[i], grain=grain, extra_solar=solar[i],
                 extra_lum=None if lum is None else lum[i]) for i in range(n)])
     return cols, ratio, ratio_floor
