@@ -288,7 +288,7 @@ def compare_draws(T_draws: u.Quantity | ArrayLike, beta_draws: ArrayLike | float
     fac, bounded, q_op = source_factors(field_uncertainty, field, projected, t.size, seq,
                                         opacity_uncertainty, _Shared(run_seed))
     ev = evaluate(t[None], b[None], [field], opacity, fac[None], bounded[None], q_op[None])
-    warn_extrapolated(np.median(ev["extrapolated"]), opacity, "compare_draws")
+    warn_extrapolated(ev["extrapolated_median"][0], opacity, "compare_draws")
     frac = None
     if grain is not None:
         chk = stochastic_heating_check(field, opacity, grain, scale=ev["p_abs"][0] / ev["nominal"][0], beta=b)

@@ -32,7 +32,7 @@ def untrusted_flags(fit_flags: str | Sequence[str] | None) -> tuple[str, ...]:
 
 
 def classify(ratio: ArrayLike, ratio_floor: ArrayLike | None, stochastic_fraction: ArrayLike,
-             untrusted: ArrayLike, th: Thresholds) -> np.ndarray:
+             untrusted: ArrayLike, th: Thresholds, *, ratio_quantiles: ArrayLike | None = None) -> np.ndarray:
     """Flags (n,) of :data:`FLAGS` from ratio draws (n, m), tested in the documented order.
 
     Parameters
@@ -47,13 +47,18 @@ def classify(ratio: ArrayLike, ratio_floor: ArrayLike | None, stochastic_fractio
     untrusted : ndarray of bool (n,)
         The fit's posterior is set by its prior.
     th : Thresholds
+    ratio_quantiles : ndarray (3, n), optional, keyword-only
+        The 16, 50 and 84 % quantiles of ``ratio`` along the draws
+        (``np.quantile(ratio, [0.16, 0.5, 0.84], axis=1)``), when the caller
+        has them already; computed here otherwise.
     """
     ratio = np.asarray(ratio, float)
     colder = ratio if ratio_floor is None else np.where(np.isnan(ratio_floor), ratio, ratio_floor)
     # "median ratio above x" written as "more than half the draws above x" (robust to inf)
     heated = (np.mean(ratio > 1.0, axis=1) > th.p_decide) & (np.mean(ratio > th.ratio_high, axis=1) > 0.5)
     shielded = (np.mean(colder < 1.0, axis=1) > th.p_decide) & (np.mean(colder < th.ratio_low, axis=1) > 0.5)
-    q16, q50, q84 = np.quantile(ratio, [0.16, 0.5, 0.84], axis=1)
+    q16, q50, q84 = (np.quantile(ratio, [0.16, 0.5, 0.84], axis=1) if ratio_quantiles is None
+                     else np.asarray(ratio_quantiles, float))
     wide = q84 - q16 > th.max_ratio_width * q50
     sf = np.asarray(stochastic_fraction, float)
     stoch = np.isfinite(sf) & (sf >= th.p_stochastic)

@@ -304,7 +304,10 @@ def draw_factors(entries: Sequence[tuple[tuple[int, ...], FieldUncertainty]],
             fac = unc.shared_factors(shared.normals(label, n))
         else:
             fac = unc.factors(comps[idx[0]] if len(idx) == 1 else None, n, rng)
-        f[:, list(idx)] *= fac[:, None]
+        if idx == tuple(range(len(comps))):  # the whole field: no fancy indexing
+            f *= fac[:, None]
+        else:
+            f[:, list(idx)] *= fac[:, None]
         if unc.bounds_T_eq:
             bounded[list(idx)] = True
     return f, bounded

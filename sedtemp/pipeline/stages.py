@@ -345,12 +345,20 @@ def _wants_ratio_draws(wf: Workflow) -> bool:
     return bool(pop.get("enabled")) and pop.get("equilibrium_scatter") is not None
 
 
+def _compare_stream(wf: Workflow, key: str) -> np.random.SeedSequence:
+    """The compare stream of :func:`source_streams` (its second child) without spawning the first.
+
+    ``spawn`` gives child i the parent's entropy with spawn key (i,), so this is
+    the same SeedSequence (tests/test_compare_speed_paths.py checks it).
+    """
+    return np.random.SeedSequence(source_seed(wf.run["seed"], key).entropy, spawn_key=(1,))
+
+
 def _compare_group(wf, mapped, idx, T, beta, mass, fit_flags, fields, opacity, keep_draws=False):
     from ..compare import compare_chunk
 
     f = wf.field
-    seeds = [np.random.SeedSequence(int(source_streams(wf, mapped.keys[i])[1].generate_state(1)[0]))
-             for i in idx]
+    seeds = [np.random.SeedSequence(int(_compare_stream(wf, mapped.keys[i]).generate_state(1)[0])) for i in idx]
     return compare_chunk(T, beta, fields, opacity, mass_draws=mass,
                          field_uncertainty=_field_uncertainty(wf),
                          opacity_uncertainty=float(wf.compare["opacity_uncertainty"]),
@@ -403,30 +411,32 @@ def compare_stage(wf: Workflow, mapped: MappedCatalog, T_draws: np.ndarray, beta
     opacity = wf.opacity()
     default_beta = _default_beta(wf)
     counts = np.isfinite(T_draws).sum(axis=1) if idx.size else np.zeros(n, int)
-    rows: list = [{} for _ in range(n)]
+    columns: dict = {}  # name -> object array (n,), None where not compared
     for m in np.unique(counts[idx]) if idx.size else []:
         group = idx[counts[idx] == m]
         _compare_groups(wf, mapped, group, int(m), T_draws, beta_draws, mass_draws, fit_flags,
-                        field_of, opacity, default_beta, rows, failures)
-    names = list(dict.fromkeys(k for r in rows for k in r))
-    return {k: np.array([r.get(k) for r in rows], dtype=object) for k in names}, failures
+                        field_of, opacity, default_beta, columns, failures)
+    return columns, failures
 
 
 def _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta):
-    T = np.stack([T_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+    # every row of the group has exactly m finite T draws: the finite ones, in order, row by row
+    t_rows = np.asarray(T_draws, float)[group]
+    keep = np.isfinite(t_rows)
+    T = t_rows[keep].reshape(len(group), m)
     beta = np.full_like(T, default_beta)
     if beta_draws is not None:
-        b = np.stack([beta_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+        b = np.asarray(beta_draws, float)[group][keep].reshape(len(group), m)
         beta = np.where(np.isfinite(b), b, default_beta)
     mass = None
     if wf.model["amplitude"] == "mass" and mass_draws is not None:
-        mass = 10.0 ** np.stack([mass_draws[i][np.isfinite(T_draws[i])][:m] for i in group])
+        mass = 10.0 ** np.asarray(mass_draws, float)[group][keep].reshape(len(group), m)
     return T, beta, mass
 
 
 def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_flags, field_of,
-                    opacity, default_beta, rows, failures):
-    """Compare ``group`` in one call; on failure, one source at a time to find the bad ones."""
+                    opacity, default_beta, columns, failures):
+    """Compare ``group`` in one call, into ``columns``; on failure, one source at a time to find the bad ones."""
     T, beta, mass = _group_arrays(wf, group, m, T_draws, beta_draws, mass_draws, default_beta)
     fields = [field_of[i] for i in group]
     with warnings.catch_warnings():
@@ -442,14 +452,17 @@ def _compare_groups(wf, mapped, group, m, T_draws, beta_draws, mass_draws, fit_f
                 return
             for j in range(len(group)):
                 _compare_groups(wf, mapped, group[j:j + 1], m, T_draws, beta_draws, mass_draws, fit_flags,
-                                field_of, opacity, default_beta, rows, failures)
+                                field_of, opacity, default_beta, columns, failures)
             return
     ratio = cols.pop("draws_ratio", None)
     cols.pop("draws_T_eq", None)
-    for j, i in enumerate(group):
-        rows[i] = {k: v[j] for k, v in cols.items()}
-        if ratio is not None:  # per-draw T_fit / T_eq, for the population's heated fraction
-            rows[i]["_ratio_draws"] = ratio[j]
+    n = len(mapped)
+    for k, v in cols.items():  # the group's values (numpy scalars) into its rows of each column
+        columns.setdefault(k, np.full(n, None, dtype=object))[group] = list(v)
+    if ratio is not None:  # per-draw T_fit / T_eq, for the population's heated fraction
+        col = columns.setdefault("_ratio_draws", np.full(n, None, dtype=object))
+        for j, i in enumerate(group):
+            col[i] = ratio[j]
 
 
 def column_rows(columns: dict, n: int) -> list[dict]:
