@@ -228,3 +228,18 @@ def test_sedtemp_run_on_a_fits_catalogue(tmp_path, capsys):
     run = capsys.readouterr().err
     assert "band 'b250': error is not positive for 1 source(s): 'S009'" in run
     assert run.replace("sedtemp run:", "sedtemp check:") == check
+
+
+def test_take_out_of_range_and_keys(tmp_path):
+    wf = _workflow()
+    streamed = stream_catalog(catalog_rows(_write(_catalogue(), tmp_path, ".fits")), wf)
+    with pytest.raises(IndexError, match=r"source index out of range \[0, 23\)"):
+        streamed.take([22, 23])
+    assert len(streamed.take([])) == 0
+    assert len(streamed.keys) == N and list(streamed.keys[[1, 2]]) == ["S001", "S002"]
+
+
+def test_an_empty_catalogue_maps_whole(tmp_path):
+    wf = _workflow()
+    mapped = stream_catalog(catalog_rows(_write(_catalogue()[:0], tmp_path, ".fits")), wf)
+    assert isinstance(mapped, MappedCatalog) and len(mapped) == 0

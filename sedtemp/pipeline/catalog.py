@@ -14,6 +14,15 @@ the results with that reason.
 Units are never guessed: a flux column needs a unit in the table, or
 ``unit = ...`` in its band table, or an entry in ``[catalog] units``. A CSV
 file may carry units as its first row under the header.
+
+``sedtemp run`` uses :func:`stream_catalog` instead: the same checks and
+values, :data:`BLOCK_ROWS` rows at a time, so that its memory does not grow
+with the catalogue. A FITS table is memory-mapped (:func:`catalog_rows`) and
+read a block at a time, the file closed after each; text formats (ECSV, CSV,
+VOTable) cannot be, so they are read once and the table as read is held for
+the run (about 8 bytes per numeric cell, plus text columns). For every row
+the run holds only the ids; each chunk's rows are converted to SI when the
+chunk is submitted (:meth:`StreamedCatalog.take`).
 """
 
 from __future__ import annotations
