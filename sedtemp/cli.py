@@ -281,14 +281,21 @@ def _summary(args, res, out, wf):
 
 
 def _cmd_run(args) -> int:
-    wf, tab, map_catalog = _load(args.workflow)
-    tab = _subset(tab, wf, ids=args.ids, limit=args.limit)
-    out = args.output if args.output is not None else wf.output_dir
     from .pipeline import check_optional_packages
+    from .pipeline.catalog import catalog_rows, stream_catalog
 
+    wf = _workflow(args.workflow)
+    path, fmt = wf.path(wf.catalog["path"]), wf.catalog["format"]
+    if args.ids is None and args.limit is None:
+        rows = catalog_rows(path, format=fmt)  # a FITS file memory-mapped, other formats read once
+    else:
+        from .pipeline import read_catalog
+
+        rows = _subset(read_catalog(path, format=fmt), wf, ids=args.ids, limit=args.limit)
+    out = args.output if args.output is not None else wf.output_dir
     check_optional_packages(wf)  # a missing extra fails here, before any fitting
-    mapped = map_catalog(tab, wf)
-    del tab  # the mapped catalogue holds what the run needs: the table as read is not kept
+    # checked a block at a time; each chunk's rows are converted as it is sent to a worker
+    mapped = stream_catalog(rows, wf)
     _run_workflow(args, wf, mapped, lambda m, _: m, Path(out), restart=args.restart, return_table=False)
     return 0
 

@@ -29,7 +29,7 @@ from astropy.table import Table
 
 from ..errors import InputError
 from .batch import empty_results, run_batch
-from .catalog import MappedCatalog, map_catalog, read_catalog
+from .catalog import MappedCatalog, catalog_rows, map_catalog, read_catalog, stream_catalog
 from .config import Workflow
 from .schema import DRAW_PREFIX, FIT_FLAGS_COLUMN, STATUS_OK, assemble
 from .stages import (
@@ -145,6 +145,8 @@ def run(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflo
     Parameters
     ----------
     table : Table, MappedCatalog, str or Path
+        A path is read as :func:`~sedtemp.pipeline.catalog.stream_catalog` does (a
+        FITS table memory-mapped, each chunk's rows converted when it runs).
     workflow : Workflow
     executor : concurrent.futures.Executor, optional, keyword-only
         Where chunks run; default the workflow's ``[run] executor``.
@@ -160,5 +162,8 @@ def run(table: Table | MappedCatalog | str | os.PathLike[str], workflow: Workflo
         The results table (see README "Output columns"); an empty catalogue
         gives every column and no rows.
     """
-    return run_batch(_mapped(table, workflow), workflow, executor=executor, output_dir=output_dir,
-                     progress=progress)
+    if isinstance(table, (str, os.PathLike)):  # a FITS file is memory-mapped and converted chunk by chunk
+        mapped = stream_catalog(catalog_rows(Path(table), format=workflow.catalog["format"]), workflow)
+    else:
+        mapped = _mapped(table, workflow)
+    return run_batch(mapped, workflow, executor=executor, output_dir=output_dir, progress=progress)

@@ -1,7 +1,8 @@
 """Chunked runs of the pipeline over a catalogue on a ``concurrent.futures.Executor``.
 
-The catalogue is cut into chunks of ``[run] chunk_size`` sources; each chunk
-is one task (:func:`sedtemp.pipeline.stages.process_chunk`) on the executor
+The catalogue is cut into chunks of ``[run] chunk_size`` sources (a streamed
+catalogue, :func:`~sedtemp.pipeline.catalog.stream_catalog`, reads and
+converts a chunk's rows as the chunk is submitted); each chunk is one task (:func:`sedtemp.pipeline.stages.process_chunk`) on the executor
 ``[run] executor`` names (:mod:`sedtemp.pipeline.executors`). The runner
 submits with a bounded number of tasks in flight, waits for the first
 finished future and checkpoints its chunk (:mod:`sedtemp.pipeline.checkpoints`),
@@ -37,7 +38,7 @@ import numpy as np
 from astropy.table import Table, vstack
 
 from .._version import __version__
-from .catalog import MappedCatalog
+from .catalog import MappedCatalog, StreamedCatalog
 from .checkpoints import OutputLock, RunState, input_digests, unmasked
 from .config import Workflow
 from .executors import EXECUTORS, InlineExecutor, open_executor
@@ -121,7 +122,7 @@ def _versions() -> dict:
     return out
 
 
-def run_metadata(wf: Workflow, mapped: MappedCatalog) -> dict:
+def run_metadata(wf: Workflow, mapped: MappedCatalog | StreamedCatalog) -> dict:
     """The reproducibility record of a results file (every writer keeps it)."""
     digests = input_digests(wf, mapped)
     return {"sedtemp_version": __version__, "versions": _versions(),
@@ -193,14 +194,16 @@ def _fit_all(get_executor, wf, mapped, todo, on_done, bar, n_keep):
     _in_flight(ex, _limit(n, len(chunks)), chunks, lambda c: (fn, wf, mapped.take(c)), done)
 
 
-def run_batch(mapped: MappedCatalog, wf: Workflow, *, executor: cf.Executor | None = None,
+def run_batch(mapped: MappedCatalog | StreamedCatalog, wf: Workflow, *, executor: cf.Executor | None = None,
               output_dir: str | Path | None = None, progress: bool = False, restart: bool = False,
               keep_draws: bool = False, return_table: bool = True) -> Table | RunTally:
     """Run fit -> predict -> compare over a mapped catalogue, in chunks, on an executor.
 
     Parameters
     ----------
-    mapped : MappedCatalog
+    mapped : MappedCatalog or StreamedCatalog
+        The catalogue; a streamed one (:func:`~sedtemp.pipeline.catalog.stream_catalog`)
+        has each chunk's rows converted as the chunk is submitted.
     wf : Workflow
     executor : concurrent.futures.Executor, optional, keyword-only
         Use this executor (not shut down here); default: the one ``[run]`` names.

@@ -14,11 +14,22 @@ the results with that reason.
 Units are never guessed: a flux column needs a unit in the table, or
 ``unit = ...`` in its band table, or an entry in ``[catalog] units``. A CSV
 file may carry units as its first row under the header.
+
+``sedtemp run`` uses :func:`stream_catalog` instead: the same checks and
+values, :data:`BLOCK_ROWS` rows at a time, so that its memory does not grow
+with the catalogue. A FITS table is memory-mapped (:func:`catalog_rows`) and
+read a block at a time, the file closed after each; text formats (ECSV, CSV,
+VOTable) cannot be, so they are read once and the table as read is held for
+the run (about 8 bytes per numeric cell, plus text columns). For every row
+the run holds only the ids; each chunk's rows are converted to SI when the
+chunk is submitted (:meth:`StreamedCatalog.take`).
 """
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 import astropy.units as u
@@ -36,7 +47,8 @@ from .tables import read_catalog, write_table
 if TYPE_CHECKING:
     from astropy.table import Table
 
-__all__ = ["MappedCatalog", "map_catalog", "read_catalog", "source_key", "write_table"]
+__all__ = ["BLOCK_ROWS", "CatalogDigest", "MappedCatalog", "StreamedCatalog", "catalog_rows", "map_catalog",
+           "read_catalog", "source_key", "stream_catalog", "write_table"]
 
 # the file side (reading catalogues, writing tables) lives in .tables; re-exported here
 
@@ -55,8 +67,11 @@ def source_key(value: object) -> str:
     return str(value).strip()
 
 
-def _ids(col, name, probs):
-    """Id values; masked, empty or NaN ids are a problem (every source needs its own id)."""
+def _ids(col, name, probs, rows):
+    """Id values; masked, empty or NaN ids are a problem (every source needs its own id).
+
+    ``rows``: the catalogue rows of ``col``'s values, which the message names.
+    """
     masked = np.asarray(getattr(col, "mask", np.zeros(len(col), bool)), dtype=bool)
     ids = np.asarray(col.filled("" if col.dtype.kind in "US" else np.nan) if masked.any() else col)
     bad = masked.copy()
@@ -66,7 +81,7 @@ def _ids(col, name, probs):
         bad |= np.char.strip(ids.astype(str)) == ""
     if bad.any():
         probs.add(f"[catalog] id_column {name!r}: {int(bad.sum())} source(s) without an id (empty, "
-                  f"masked or NaN) at row(s) {np.flatnonzero(bad)[:_SHOW].tolist()}; give every source an id")
+                  f"masked or NaN) at row(s) {np.asarray(rows)[bad][:_SHOW].tolist()}; give every source an id")
     return ids
 
 
@@ -372,8 +387,6 @@ def _field_components(tab, wf, distance_m, redshift, keys, probs, catalog_units)
     return comps
 
 
-
-
 def _min_bands(wf, n_free):
     m = wf.catalog["min_bands"]
     return n_free if m is None else max(int(m), 1)
@@ -421,8 +434,18 @@ def map_catalog(table: Table, workflow: Workflow, *, n_free: int | None = None) 
         unit or with an inconvertible or contradicting unit, NaN or
         non-positive errors, duplicate or missing ids, non-finite field
         parameters, a field that cannot be built.
+
+    See Also
+    --------
+    stream_catalog : the same checks and values, a block of rows at a time.
     """
-    wf, tab = workflow, table
+    mapped, probs = _map_rows(table, workflow, n_free, np.arange(len(table)), check_field=True)
+    probs.raise_if_any()
+    return mapped
+
+
+def _map_rows(tab, wf, n_free, rows, *, check_field):
+    """Map the rows ``rows`` (their positions in the catalogue) held by ``tab``: (mapped, problems)."""
     probs = _Problems(wf.catalog["path"])
     cat_units = dict(wf.catalog["units"])
     n, names = len(tab), tuple(wf.bands)
@@ -431,7 +454,7 @@ def map_catalog(table: Table, workflow: Workflow, *, n_free: int | None = None) 
         probs.add(f"[catalog] id_column: column {idc!r} is not in the catalogue")
         ids = np.arange(n)
     else:
-        ids = _ids(tab[idc], idc, probs)
+        ids = _ids(tab[idc], idc, probs, rows)
     keys = np.array([source_key(v) for v in ids], dtype=str) if n else np.zeros(0, str)
     uniq, counts = np.unique(keys, return_counts=True)
     dup = uniq[counts > 1]
@@ -458,15 +481,14 @@ def map_catalog(table: Table, workflow: Workflow, *, n_free: int | None = None) 
     comps = _field_components(tab, wf, distance, redshift, keys, probs, cat_units)
     if n_free is None:
         n_free = _n_free(wf)
-    mapped = MappedCatalog(ids=ids, keys=keys, rows=np.arange(n), band_names=names, flux=flux, err=err,
-                           missing=missing, limit_only=lim, distance_m=distance, redshift=redshift,
+    mapped = MappedCatalog(ids=ids, keys=keys, rows=np.asarray(rows, dtype=int), band_names=names, flux=flux,
+                           err=err, missing=missing, limit_only=lim, distance_m=distance, redshift=redshift,
                            field_params=comps, A_V=av,
                            skip_reason=_skip_reasons(missing, lim, names, _min_bands(wf, n_free)),
                            id_column=idc, kept=_kept_columns(tab, wf, probs))
-    if not probs.items:
+    if check_field and not probs.items:
         _check_field(mapped, probs)
-    probs.raise_if_any()
-    return mapped
+    return mapped, probs
 
 
 def _kept_columns(tab, wf, probs) -> dict:
@@ -485,3 +507,290 @@ def _n_free(wf) -> int:
     model = wf.build_model(distance=1.0 * u.pc, redshift=0.0) if wf.model["amplitude"] == "mass" \
         else wf.build_model(redshift=0.0)
     return len(model.param_names)
+
+
+# ------------------------------------------------------------------ streamed catalogues
+#: Rows read, checked and converted at a time by :class:`StreamedCatalog` (and hashed at a time by
+#: :class:`CatalogDigest`): a few MB of a typical catalogue. The digest of a catalogue depends on
+#: it, so changing it makes earlier checkpoints look like those of another catalogue.
+BLOCK_ROWS = 16384
+
+
+class CatalogDigest:
+    """SHA-256 of every catalogue value a run uses, added a block of mapped rows at a time.
+
+    The same catalogue gives the same digest whether its blocks come from a
+    :class:`MappedCatalog` (:meth:`of`) or from a :class:`StreamedCatalog`
+    (blocks of :data:`BLOCK_ROWS` rows, in row order). Text is hashed as
+    text, so a block's string width does not matter.
+    """
+
+    def __init__(self) -> None:
+        self._h = hashlib.sha256()
+
+    def _array(self, arr) -> None:
+        a = np.asarray(getattr(arr, "value", arr))
+        if a.dtype.kind in "OUS":
+            self._h.update(b"text" + str(a.shape).encode())
+            self._h.update("\0".join(a.astype(str).ravel().tolist()).encode("utf-8", "surrogatepass") + b"\1")
+            return
+        self._h.update(str(a.dtype).encode() + str(a.shape).encode())
+        self._h.update(np.ascontiguousarray(a).tobytes())
+
+    def add(self, block: MappedCatalog) -> None:
+        """Hash the next block of rows (catalogue order)."""
+        for arr in (block.keys, block.rows, block.flux, block.err, block.missing, block.limit_only,
+                    block.redshift, block.A_V, block.skip_reason):
+            self._array(arr)
+        if block.distance_m is not None:
+            self._array(block.distance_m)
+        for comp in block.field_params:  # per-source field columns and star separations (ra/dec)
+            for k in sorted(comp):
+                self._h.update(k.encode())
+                v = comp[k]
+                self._array(v) if hasattr(v, "shape") else self._h.update(repr(v).encode())
+        for name in sorted(block.kept):
+            self._h.update(name.encode())
+            self._array(block.kept[name])
+
+    def hexdigest(self) -> str:
+        return self._h.hexdigest()
+
+    @classmethod
+    def of(cls, mapped: MappedCatalog | StreamedCatalog) -> str:
+        """The digest of a whole catalogue."""
+        if isinstance(mapped, StreamedCatalog):
+            return mapped.digest
+        d = cls()
+        for start in range(0, len(mapped), BLOCK_ROWS):
+            d.add(mapped.take(np.arange(start, min(start + BLOCK_ROWS, len(mapped)))))
+        return d.hexdigest()
+
+
+class _TableRows:
+    """Rows of a catalogue held in memory (a text format, or a table given as such)."""
+
+    def __init__(self, table: Table):
+        self.table = table
+
+    def __len__(self) -> int:
+        return len(self.table)
+
+    def read(self, start: int, stop: int) -> Table:
+        return self.table[start:stop]
+
+    def whole(self) -> Table:
+        return self.table
+
+
+#: File name endings of FITS catalogues read a block of rows at a time (compressed ones are not).
+_FITS_SUFFIXES = (".fits", ".fit", ".fts")
+
+
+class _FitsRows:
+    """Rows of a FITS binary table, read through a memory map a block at a time.
+
+    Each block is read with astropy's own FITS table reader (same masks, text
+    stripping, units and metadata as ``Table.read`` of the file) and copied;
+    the file is closed after each block, so the pages read do not stay mapped.
+    """
+
+    def __init__(self, path: Path, hdu: int, n_rows: int):
+        self.path, self.hdu, self.n = path, hdu, n_rows
+
+    @classmethod
+    def open(cls, path: Path) -> _FitsRows | None:
+        """The reader of a file with exactly one table HDU; None if it is not one (read it whole)."""
+        from astropy.io import fits
+
+        try:
+            with fits.open(path, memmap=True, character_as_bytes=True) as hdul:
+                tables = [i for i, h in enumerate(hdul) if isinstance(h, (fits.BinTableHDU, fits.TableHDU))]
+                if len(tables) != 1 or any(isinstance(h, fits.GroupsHDU) for h in hdul):
+                    return None
+                return cls(path, tables[0], int(hdul[tables[0]].header["NAXIS2"]))
+        except Exception:  # noqa: BLE001 - any problem: the whole-file reader says what is wrong
+            return None
+
+    def __len__(self) -> int:
+        return self.n
+
+    def read(self, start: int, stop: int) -> Table:
+        from astropy.io import fits
+        from astropy.io.fits.connect import read_table_fits
+
+        with fits.open(self.path, memmap=True, character_as_bytes=True) as hdul:
+            hdu = hdul[self.hdu]
+            data = hdu.data[start:stop]
+            # text as bytes, as Table.read gives it (a slice of the table forgets it and decodes to str)
+            data._character_as_bytes = True
+            part = type(hdu)(data=data, header=hdu.header)
+            return read_table_fits(part).copy(copy_data=True)  # detached from the map closed here
+
+    def whole(self) -> Table:
+        return read_catalog(self.path, format="fits")
+
+
+def catalog_rows(path: str | Path, *, format: str | None = None) -> _TableRows | _FitsRows:
+    """The rows of a catalogue file: FITS tables memory-mapped, other formats read once.
+
+    Raises
+    ------
+    CatalogError
+        As :func:`read_catalog`: the file does not exist or cannot be read.
+    """
+    path = Path(path)
+    if format in (None, "fits") and path.suffix.lower() in _FITS_SUFFIXES and path.is_file():
+        rows = _FitsRows.open(path)
+        if rows is not None:
+            return rows
+    return _TableRows(read_catalog(path, format=format))
+
+
+class StreamedCatalog:
+    """A catalogue checked and converted a block of rows at a time, for the batch run.
+
+    What :func:`map_catalog` does for the whole table at once, done for
+    :data:`BLOCK_ROWS` rows at a time: the checks (a problem anywhere makes
+    the whole table be mapped by :func:`map_catalog`, which raises the same
+    :class:`~sedtemp.errors.CatalogError`), then :meth:`take` converts the
+    rows a chunk needs when the chunk is sent to a worker. Held for every
+    row: the ids only (the results' id column and the report's names).
+
+    Attributes
+    ----------
+    ids : ndarray (n,)
+        Source ids as in the input table.
+    keys : sequence of str (n,)
+        :func:`source_key` of each id, computed when asked for.
+    band_names : tuple of str
+    id_column : str
+    digest : str
+        :class:`CatalogDigest` of the catalogue.
+    """
+
+    def __init__(self, source: _TableRows | _FitsRows, workflow: Workflow, *, n_free: int | None = None):
+        self._source, self._wf = source, workflow
+        self._n_free = _n_free(workflow) if n_free is None else n_free
+        self.band_names = tuple(workflow.bands)
+        self.id_column = workflow.catalog["id_column"]
+        self._window: MappedCatalog | None = None
+        self.ids, self.digest = self._check_all()
+        self.keys = _Keys(self.ids)
+
+    def __len__(self) -> int:
+        return len(self.ids)
+
+    def _check_all(self):
+        """Every block checked and hashed; on a problem, the whole table mapped (which raises)."""
+        n, ids, digest = len(self._source), [], CatalogDigest()
+        hashes = np.empty(n, dtype=np.int64)  # duplicate ids across blocks, 8 bytes a row
+        bad = n == 0
+        for start in range(0, n, BLOCK_ROWS):
+            stop = min(start + BLOCK_ROWS, n)
+            block, probs = _map_rows(self._source.read(start, stop), self._wf, self._n_free,
+                                     np.arange(start, stop), check_field=start == 0)
+            if probs.items:
+                bad = True
+                break
+            digest.add(block)
+            ids.append(block.ids)
+            hashes[start:stop] = [hash(str(k)) for k in block.keys]
+            if stop == n:
+                self._window = block
+        if not bad:
+            hashes.sort()
+            bad = bool(np.any(hashes[1:] == hashes[:-1]))  # (or two keys of one hash: checked in full)
+        del hashes
+        if bad:
+            mapped = map_catalog(self._source.whole(), self._wf, n_free=self._n_free)  # raises if really bad
+            return mapped.ids, CatalogDigest.of(mapped)
+        return (np.concatenate(ids) if len(ids) > 1 else ids[0]), digest.hexdigest()
+
+    def take(self, index: ArrayLike) -> MappedCatalog:
+        """The mapped sources at ``index`` (integer array), as ``map_catalog(table).take(index)``."""
+        index = np.asarray(index, dtype=int)
+        n = len(self)
+        if index.size and (index.min() < 0 or index.max() >= n):
+            raise IndexError(f"source index out of range [0, {n})")
+        lo, hi = (int(index.min()), int(index.max()) + 1) if index.size else (0, 1)
+        w = self._window
+        if w is None or lo < w.rows[0] or hi > w.rows[0] + len(w):
+            if hi - lo > BLOCK_ROWS:  # sources far apart: only their rows
+                rows = np.unique(index)
+                return self._mapped(self._rows_table(rows), rows).take(np.searchsorted(rows, index))
+            stop = min(lo + BLOCK_ROWS, n)
+            w = self._window = self._mapped(self._source.read(lo, stop), np.arange(lo, stop))
+        return w.take(index - w.rows[0])
+
+    def _mapped(self, tab, rows):
+        mapped, probs = _map_rows(tab, self._wf, self._n_free, rows, check_field=False)
+        probs.raise_if_any()  # checked before: only a catalogue changed since shows problems here
+        return mapped
+
+    def _rows_table(self, index):
+        """The rows ``index`` (sorted, unique) of the catalogue, read block by block."""
+        from astropy.table import vstack
+
+        lo, hi = int(index[0]), int(index[-1]) + 1
+        if hi - lo == index.size:  # consecutive (a chunk larger than a block): one read
+            return self._source.read(lo, hi)
+        parts = []
+        for start in np.unique(index // BLOCK_ROWS) * BLOCK_ROWS:
+            sel = index[(index >= start) & (index < start + BLOCK_ROWS)]
+            parts.append(self._source.read(int(start), int(min(start + BLOCK_ROWS, len(self))))[sel - start])
+        if len(parts) == 1:
+            return parts[0]
+        out = vstack(parts, metadata_conflicts="silent")
+        for name in out.colnames:  # vstack forgets the fill value (FITS: TNULL, NaN, ""), the file's
+            fills = [p[name].fill_value for p in parts if isinstance(p[name], MaskedColumn)]
+            if fills and isinstance(out[name], MaskedColumn):
+                out[name].fill_value = fills[0]
+        return out
+
+
+class _Keys:
+    """:func:`source_key` of each id, computed when one is asked for (nothing held)."""
+
+    def __init__(self, ids: np.ndarray):
+        self._ids = ids
+
+    def __len__(self) -> int:
+        return len(self._ids)
+
+    def __getitem__(self, i):
+        if isinstance(i, (int, np.integer)):
+            return source_key(self._ids[i])
+        vals = self._ids[i]
+        return np.array([source_key(v) for v in vals], dtype=str) if len(vals) else np.zeros(0, str)
+
+
+def stream_catalog(rows: Table | _TableRows | _FitsRows, workflow: Workflow, *,
+                   n_free: int | None = None) -> StreamedCatalog | MappedCatalog:
+    """Validate a catalogue a block of rows at a time; convert each chunk's rows when asked.
+
+    Parameters
+    ----------
+    rows : Table, or the rows of a file (:func:`catalog_rows`)
+        A FITS file is memory-mapped and read a block at a time; the rows of a
+        text format (ECSV, CSV, VOTable) cannot be, so they are read once and
+        that table is held for the run (about 8 bytes per numeric cell).
+    workflow : Workflow
+    n_free : int, optional, keyword-only
+        As :func:`map_catalog`.
+
+    Returns
+    -------
+    StreamedCatalog or MappedCatalog
+        Its ``take(index)`` equals ``map_catalog(table, workflow).take(index)``;
+        an empty catalogue gives the (empty) MappedCatalog.
+
+    Raises
+    ------
+    CatalogError
+        The very error :func:`map_catalog` raises for the whole table.
+    """
+    source = _TableRows(rows) if not isinstance(rows, (_TableRows, _FitsRows)) else rows
+    if not len(source):  # nothing to stream: the empty mapped catalogue (its results have every column)
+        return map_catalog(source.whole(), workflow, n_free=n_free)
+    return StreamedCatalog(source, workflow, n_free=n_free)

@@ -37,7 +37,7 @@ from astropy.table import Table
 from .._io import atomic_write_text, remove_stale_temporaries
 from .._version import __version__
 from ..errors import ConfigError
-from .catalog import MappedCatalog, write_table
+from .catalog import CatalogDigest, MappedCatalog, StreamedCatalog, write_table
 from .config import Workflow
 
 __all__ = [
@@ -125,31 +125,6 @@ def _sha256_bytes(data: bytes) -> str:
     return hashlib.sha256(data).hexdigest()
 
 
-def _array_digest(h, arr) -> None:
-    a = np.asarray(getattr(arr, "value", arr))
-    h.update(str(a.dtype).encode() + str(a.shape).encode())
-    h.update(np.ascontiguousarray(a.astype(str) if a.dtype.kind in "OUS" else a).tobytes())
-
-
-def _catalog_digest(mapped: MappedCatalog) -> str:
-    """SHA-256 of every catalogue value the run uses (after mapping: what the stages see)."""
-    h = hashlib.sha256()
-    for arr in (mapped.keys, mapped.rows, mapped.flux, mapped.err, mapped.missing, mapped.limit_only,
-                mapped.redshift, mapped.A_V, mapped.skip_reason):
-        _array_digest(h, arr)
-    if mapped.distance_m is not None:
-        _array_digest(h, mapped.distance_m)
-    for comp in mapped.field_params:  # per-source field columns and star separations (ra/dec)
-        for k in sorted(comp):
-            h.update(k.encode())
-            v = comp[k]
-            _array_digest(h, v) if hasattr(v, "shape") else h.update(repr(v).encode())
-    for name in sorted(mapped.kept):
-        h.update(name.encode())
-        _array_digest(h, mapped.kept[name])
-    return h.hexdigest()
-
-
 def referenced_files(wf: Workflow) -> list[Path]:
     """Files the workflow points to besides the catalogue: band responses, field and opacity tables."""
     out = []
@@ -163,12 +138,16 @@ def referenced_files(wf: Workflow) -> list[Path]:
     return sorted(set(out))
 
 
-def input_digests(wf: Workflow, mapped: MappedCatalog) -> dict:
-    """Digests of everything that changes results (see the module notes)."""
+def input_digests(wf: Workflow, mapped: MappedCatalog | StreamedCatalog) -> dict:
+    """Digests of everything that changes results (see the module notes).
+
+    The catalogue's (:class:`~sedtemp.pipeline.catalog.CatalogDigest`) is taken of its values
+    after mapping, a block of rows at a time: the same for a table and for its streamed file.
+    """
     files = {str(p): _sha256_bytes(p.read_bytes()) for p in referenced_files(wf)}
     return {"workflow": wf.results_digest(), "workflow_content": json.loads(json.dumps(wf.results_content(),
                                                                                       default=str)),
-            "catalog": _catalog_digest(mapped), "files": files, "n_sources": len(mapped)}
+            "catalog": CatalogDigest.of(mapped), "files": files, "n_sources": len(mapped)}
 
 
 def _changed_keys(old: dict, new: dict) -> list[str]:
@@ -199,7 +178,8 @@ def unmasked(tab: Table) -> Table:
 class RunState:
     """The run state of an output folder: input digests and the parts with their checksums."""
 
-    def __init__(self, out: Path, wf: Workflow, mapped: MappedCatalog, *, restart: bool = False):
+    def __init__(self, out: Path, wf: Workflow, mapped: MappedCatalog | StreamedCatalog, *,
+                 restart: bool = False):
         self.out = Path(out)
         self.parts_dir = self.out / PARTS_DIR
         self.file = self.out / STATE_FILE
