@@ -290,7 +290,7 @@ class EmissionTable:
         A first guess from the table inverted per beta node (linear in ln P
         and beta; within ~1e-4 in ln T), then one Newton step in ln T on the
         forward spline, and more only where that step's own error estimate,
-        |d2 ln P / (2 d ln P)| step^2 (Newton's quadratic convergence), is
+        abs(d2 ln P / (2 d ln P)) step^2 (Newton's quadratic convergence), is
         above 1e-10; the remaining error is then < ~1e-10 in ln T.
         """
         p, b = np.broadcast_arrays(np.asarray(power, float), np.asarray(beta, float))
