@@ -211,10 +211,12 @@ class MarginalLogPosterior:
 
 def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_walkers, rng, grid=None,  # noqa: ARG001 - kept for a uniform call signature
                      columns=None):
-    """Walkers drawn from the exact grid posterior (linear-amplitude models).
+    """Draws of the exact grid posterior (linear-amplitude models): the first ``n_walkers`` place the walkers.
 
-    A coarse grid is enough here (narrow posteriors are zoomed automatically);
-    callers fitting many sources with one set-up pass ``grid`` to reuse it.
+    All of them (``4 n_walkers`` less any outside the prior) shape the
+    independence proposal of :func:`_moves`. A coarse grid is enough here
+    (narrow posteriors are zoomed automatically); callers fitting many
+    sources with one set-up pass ``grid`` to reuse it.
     ``columns``: the parameters sampled (default all).
     """
     if grid is None:
@@ -235,7 +237,7 @@ def _start_from_grid(post_fn, model, bands, prior, calibration, phot, used, n_wa
     p0 = p0[np.isfinite(lp)]
     if len(p0) < n_walkers:
         return None
-    return p0[:n_walkers]
+    return p0
 
 
 def _start_from_optimum(post, names, prior, n_walkers, rng):
@@ -274,18 +276,54 @@ def _diagnostics(chain):
     return ess, rh, tau
 
 
-def _moves():
+def _moves(draws=None):
     # Differential-evolution proposals follow the curved T-beta ridge better than
     # the stretch move alone; the stretch move keeps the ensemble affine-invariant.
     # (DESnookerMove was tried too: no gain in tau here, and its Python-level
-    # proposal loop cost ~10 % of the run.)
-    return [(emcee.moves.DEMove(), 0.8), (emcee.moves.StretchMove(), 0.2)]
+    # proposal loop cost ~10 % of the run.) With grid draws, half the steps are
+    # independence proposals shaped by them: one log-posterior call for all
+    # walkers per step, and a tau of a few steps where the draws fit well.
+    if draws is None:
+        return [(emcee.moves.DEMove(), 0.8), (emcee.moves.StretchMove(), 0.2)]
+    return [(_independence_move(draws), _IND_WEIGHT), (emcee.moves.DEMove(), 0.8 * (1 - _IND_WEIGHT)),
+            (emcee.moves.StretchMove(), 0.2 * (1 - _IND_WEIGHT))]
 
 
-def _run_chain(post_fn, p0, seed, *, ess_target, check_every, max_steps, key_idx):
+#: Share of steps that are independence proposals when the start had grid draws.
+_IND_WEIGHT = 0.5
+#: Degrees of freedom and width (x the draws' covariance) of the independence proposal.
+_IND_DOF, _IND_WIDTH = 4.0, 1.3
+
+
+def _independence_move(draws):
+    """Independence Metropolis-Hastings (Tierney 1994) with a fixed multivariate-t proposal.
+
+    The proposal is built once, before sampling, from grid-posterior draws, so
+    the kernel keeps the posterior invariant; heavy tails (``_IND_DOF``) and a
+    width above the draws' own cover the posterior's tails.
+    """
+    mu = draws.mean(axis=0)
+    d = draws.shape[1]
+    cov = np.atleast_2d(np.cov(draws, rowvar=False)) * _IND_WIDTH**2 * (_IND_DOF - 2) / _IND_DOF
+    chol = np.linalg.cholesky(cov + 1e-12 * np.diag(np.diag(cov)))
+
+    def log_q(x):
+        z = np.linalg.solve(chol, (x - mu).T)
+        return -0.5 * (_IND_DOF + d) * np.log1p(np.sum(z * z, axis=0) / _IND_DOF)
+
+    def propose(x0, random):
+        n = x0.shape[0]
+        z = random.standard_normal((n, d)) / np.sqrt(random.chisquare(_IND_DOF, n) / _IND_DOF)[:, None]
+        x1 = mu + z @ chol.T
+        return x1, log_q(x0) - log_q(x1)
+
+    return emcee.moves.MHMove(propose)
+
+
+def _run_chain(post_fn, p0, seed, *, ess_target, check_every, max_steps, key_idx, draws=None):
     """Run emcee until the key parameters reach ``ess_target`` with R-hat < 1.01, or ``max_steps``."""
     nw, nd = p0.shape
-    sampler = emcee.EnsembleSampler(nw, nd, post_fn, vectorize=True, moves=_moves())
+    sampler = emcee.EnsembleSampler(nw, nd, post_fn, vectorize=True, moves=_moves(draws))
     state = emcee.State(p0, random_state=np.random.RandomState(seed).get_state())
     tau = np.full(nd, check_every / 10.0)
     converged = False
@@ -420,10 +458,11 @@ def fit_source(flux: u.Quantity | ArrayLike, flux_err: u.Quantity | ArrayLike, b
     ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(resolve_seed(seed))
     s_start, s_chain, s_ppp = ss.spawn(3)
     rng = np.random.default_rng(s_start)
-    p0 = None
+    p0 = draws = None
     if start in ("auto", "grid") and gridable:
-        p0 = _start_from_grid(post, model, bands, prior, calibration, phot, used, n_walkers, rng, start_grid,
-                              columns=sampled)
+        draws = _start_from_grid(post, model, bands, prior, calibration, phot, used, n_walkers, rng, start_grid,
+                                 columns=sampled)
+        p0 = None if draws is None else draws[:n_walkers]
     elif start == "grid":
         raise InputError(f"start='grid' needs a linear-amplitude model with T and beta; {type(model).__name__} is not")
     if p0 is None:
@@ -431,7 +470,8 @@ def fit_source(flux: u.Quantity | ArrayLike, flux_err: u.Quantity | ArrayLike, b
     key_idx = [sampled.index(k) for k in ("T", "beta") if k in sampled] or list(range(len(sampled)))
     chain_seed = int(s_chain.generate_state(1)[0])
     sampler, burn, converged = _run_chain(post, p0, chain_seed, ess_target=ess_target,
-                                          check_every=check_every, max_steps=max_steps, key_idx=key_idx)
+                                          check_every=check_every, max_steps=max_steps, key_idx=key_idx,
+                                          draws=draws)
     chain, lnp = _full_chain(sampler, post, marginal, np.random.default_rng(s_ppp))
     return _make_result(chain, lnp, sampler, burn, converged, post, model, bands, prior, phot, like,
                         np.random.default_rng(s_ppp), seed, ess_target, key_idx)

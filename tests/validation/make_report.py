@@ -350,7 +350,7 @@ def write_markdown(out, summary, elapsed):
          "(Talts et al. 2018).", ""]
     for key, title in (("grid_default", "Grid, package default grid (100 x 60 nodes, narrow posteriors zoomed)"),
                        ("grid_fine", f"Grid, {FINE[0]} x {FINE[1]} nodes"),
-                       ("mcmc", "MCMC (emcee), 64 walkers (DE + stretch moves), ess_target 400"),
+                       ("mcmc", "MCMC (emcee), 64 walkers (independence + DE + stretch moves), ess_target 400"),
                        ("grid_fine_depth", f"Grid {FINE[0]} x {FINE[1]}, constant-depth noise (exact SBC design; "
                         "S/N is that of the reference source T=20 K, beta=1.8, M=1 Msun)")):
         L += [f"## {title}", "", _cov_table(summary[key], key.split("_")[0]), "",
